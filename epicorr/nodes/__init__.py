@@ -1,0 +1,1 @@
+"""Thin Nipype SimpleInterface nodes, one per step, each calling one core function."""

@@ -1,0 +1,1 @@
+"""Field maps from gradient-echo phase data: phase difference, two phases, direct field maps."""
