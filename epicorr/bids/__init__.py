@@ -1,0 +1,1 @@
+"""BIDS discovery and derivatives naming (an edge of the package)."""

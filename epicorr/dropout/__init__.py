@@ -1,0 +1,1 @@
+"""Residual signal dropout: predicted retained signal from the field and the EPI protocol."""
