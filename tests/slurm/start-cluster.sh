@@ -37,6 +37,11 @@ cluster_ready() {
     sinfo -h -N -o '%T' 2>/dev/null | grep -Eq '^(idle|mixed|allocated)'
 }
 
+# One start at a time (parallel test workers may call this together).
+mkdir -p "$STATE"
+exec 9>"$STATE/start.lock"
+flock -w 120 9 || die "another start-cluster.sh holds $STATE/start.lock"
+
 if cluster_ready; then
   echo "start-cluster: already running"
   echo "SLURM_CONF=$CONF"
