@@ -66,6 +66,9 @@ MAX_ECHO_SPACING_S = 0.01
 MIN_ECHO_SPACING_S = 1e-6
 
 _AXES = {"i": 0, "j": 1, "k": 2}
+#: Largest ReconMatrixPE accepted: MAX_TOTAL_READOUT_S / MIN_ECHO_SPACING_S
+#: already bounds N near 5e5, so anything above 1e6 is a corrupt sidecar.
+_MAX_RECON_MATRIX_PE = 1_000_000
 
 
 @dataclass(frozen=True)
@@ -140,7 +143,10 @@ def _positive_finite(value: Any, *, key: str, file: Any) -> float:
     if isinstance(value, bool) or not isinstance(value, (int, float)):
         raise EpicorrInputError("must be a number in seconds", file=file, key=key, value=value,
                                 hint="fix the sidecar")
-    v = float(value)
+    try:
+        v = float(value)
+    except OverflowError:  # a JSON integer beyond float range
+        v = math.inf
     if not math.isfinite(v) or v <= 0:
         raise EpicorrInputError("must be a positive, finite number of seconds", file=file,
                                 key=key, value=value, hint="fix the sidecar")
@@ -212,9 +218,11 @@ def readout_timing(metadata: Mapping[str, Any], *, n_pe_image: int, file: Any = 
     n_key = "ReconMatrixPE"
     if n_key in metadata and metadata[n_key] is not None:
         raw = metadata[n_key]
-        if isinstance(raw, bool) or not isinstance(raw, (int, float)) or not math.isfinite(float(raw)) \
-                or float(raw) != int(raw) or int(raw) < 2:
-            raise EpicorrInputError("must be a whole number of at least 2", file=file, key=n_key,
+        if isinstance(raw, bool) or not isinstance(raw, (int, float)) \
+                or not (isinstance(raw, int) or math.isfinite(raw)) \
+                or raw != int(raw) or not 2 <= int(raw) <= _MAX_RECON_MATRIX_PE:
+            raise EpicorrInputError(f"must be a whole number from 2 to {_MAX_RECON_MATRIX_PE}",
+                                    file=file, key=n_key,
                                     value=raw, hint="fix the sidecar or remove the key")
         n_pe = int(raw)
         sources["n_pe"] = f"sidecar {n_key}"
@@ -263,4 +271,15 @@ def readout_timing(metadata: Mapping[str, Any], *, n_pe_image: int, file: Any = 
             raise EpicorrInputError("implies an echo spacing over 10 ms", file=file,
                                     key="TotalReadoutTime", value=metadata["TotalReadoutTime"],
                                     hint="BIDS wants seconds")
+        if ees < MIN_ECHO_SPACING_S:
+            raise EpicorrInputError(f"implies an echo spacing under 1 µs with N={n_pe}", file=file,
+                                    key="TotalReadoutTime", value=metadata["TotalReadoutTime"],
+                                    hint="check ReconMatrixPE and the units (seconds)")
+    if ees * (n_pe - 1) > MAX_TOTAL_READOUT_S:
+        from_sidecar = sources["n_pe"].startswith("sidecar")
+        raise EpicorrInputError(f"implies a total readout over {MAX_TOTAL_READOUT_S:g} s "
+                                f"(EffectiveEchoSpacing={ees!r}, N={n_pe})", file=file,
+                                key=n_key if from_sidecar else "EffectiveEchoSpacing",
+                                value=n_pe if from_sidecar else ees,
+                                hint="check ReconMatrixPE and the units (seconds)")
     return ReadoutTiming(effective_echo_spacing=ees, n_pe=n_pe, sources=sources)
