@@ -24,6 +24,7 @@ __all__ = [
     "Executor",
     "FieldSourceKind",
     "parse_option",
+    "EchoKind",
 ]
 
 
@@ -122,3 +123,10 @@ def parse_option(enum_cls: type[E], value: object, *, name: str, file: object = 
     allowed = ", ".join(repr(m.value) for m in enum_cls)
     raise EpicorrInputError("not an allowed value", file=file, key=name, value=value,
                             hint=f"use one of {allowed}")
+
+
+class EchoKind(_Option):
+    """Echo type of a simulated EPI series (``epicorr.simulate``)."""
+
+    SPIN_ECHO = "spin-echo"          #: static off-resonance phase refocused at TE
+    GRADIENT_ECHO = "gradient-echo"  #: static phase accrues over TE (through-plane dephasing)
