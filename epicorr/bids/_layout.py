@@ -87,9 +87,9 @@ class BidsDataset:
         self.root = root
         self.files = sorted(data, key=lambda f: f.relpath)
         self._by_rel = {f.relpath: f for f in self.files}
-        self._sidecars: dict[tuple[str, str], list[BidsFile]] = {}
+        self._sidecars: dict[tuple[str, str, str], list[BidsFile]] = {}
         for sc in sidecars:
-            self._sidecars.setdefault((sc.suffix, sc.extension), []).append(sc)
+            self._sidecars.setdefault((sc.suffix, sc.extension, sc.folder), []).append(sc)
         self._json_cache: dict[Path, dict] = {}
         self._meta_cache: dict[str, tuple[dict, dict]] = {}
 
@@ -113,14 +113,13 @@ class BidsDataset:
 
     # -- sidecars --------------------------------------------------------
     def _applicable(self, target: BidsFile, extension: str) -> list[BidsFile]:
-        folder = target.folder
+        parts = target.folder.split("/") if target.folder else []
         out = []
-        for sc in self._sidecars.get((target.suffix, extension), ()):
-            scf = sc.folder
-            if scf and not (folder == scf or folder.startswith(scf + "/")):
-                continue
-            if all(target.entities.get(k) == v for k, v in sc.entities.items()):
-                out.append(sc)
+        for depth in range(len(parts) + 1):
+            folder = "/".join(parts[:depth])
+            for sc in self._sidecars.get((target.suffix, extension, folder), ()):
+                if all(target.entities.get(k) == v for k, v in sc.entities.items()):
+                    out.append(sc)
         # Shallow and general first, so deeper and more specific ones override.
         out.sort(key=lambda sc: (_depth(sc.folder), len(sc.entities)))
         return out
