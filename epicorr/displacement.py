@@ -239,9 +239,19 @@ def invert_displacement(disp_vox: Any, *, pe_axis: int, refine: bool = True) -> 
     return np.ascontiguousarray(inv)
 
 
-#: Newton refinement keeps this many voxels off each line end, where the
-#: mirror-extended spline of d is a poor model of a sloping displacement.
-_EDGE = 3.0
+#: Voxels of linear extrapolation added at each line end before the spline of
+#: ``d`` is taken: a mirror-extended spline would bend a sloping displacement
+#: near the ends.
+_PAD = 6
+
+
+def _pad_linear(arr: np.ndarray, *, axis: int, pad: int) -> np.ndarray:
+    """Extend ``arr`` by ``pad`` samples at both ends of ``axis``, continuing the end slopes."""
+    a = np.moveaxis(arr, axis, -1)
+    k = np.arange(1, pad + 1, dtype=np.float64)
+    lo = a[..., :1] - k[::-1] * (a[..., 1:2] - a[..., :1])
+    hi = a[..., -1:] + k * (a[..., -1:] - a[..., -2:-1])
+    return np.moveaxis(np.concatenate([lo, a, hi], axis=-1), -1, axis)
 
 
 def _newton_refine(disp: np.ndarray, inv: np.ndarray, *, axis: int, steps: int = 2) -> np.ndarray:
@@ -252,16 +262,22 @@ def _newton_refine(disp: np.ndarray, inv: np.ndarray, *, axis: int, steps: int =
     shape = [1, 1, 1]
     shape[axis] = n
     y_d = np.arange(n, dtype=np.float64).reshape(shape)
-    jac = displacement_jacobian(disp, pe_axis=axis)
+    padded = _pad_linear(disp, axis=axis, pad=_PAD)
+    jac = displacement_jacobian(padded, pe_axis=axis)
     src = y_d + inv
+    # Positions live on the padded line; the pads are dummies (sampled, ignored).
+    where = [slice(None)] * 3
+    where[axis] = slice(_PAD, _PAD + n)
+    where = tuple(where)
+    pos = np.zeros(padded.shape)
     for _ in range(steps):
-        inside = (src >= _EDGE) & (src <= n - 1 - _EDGE)
+        inside = (src >= 0) & (src <= n - 1)
         if not inside.any():
             break
-        pos = np.where(inside, src, 0.0)
-        d_at = LineResampler(pos, axis=axis, interpolation=Interpolation.CUBIC)(disp)
-        j_at = LineResampler(pos, axis=axis, interpolation=Interpolation.LINEAR)(jac)
-        residual = pos + d_at.astype(np.float64) - y_d
+        pos[where] = np.where(inside, src, 0.0) + _PAD
+        d_at = LineResampler(pos, axis=axis, interpolation=Interpolation.CUBIC)(padded)[where]
+        j_at = LineResampler(pos, axis=axis, interpolation=Interpolation.LINEAR)(jac)[where]
+        residual = src + d_at.astype(np.float64) - y_d
         ok = inside & (j_at > 0.1)
         step = np.clip(residual / np.where(ok, j_at, 1.0), -1.0, 1.0)
         src = np.where(ok, src - step, src)
