@@ -239,18 +239,29 @@ def invert_displacement(disp_vox: Any, *, pe_axis: int, refine: bool = True) -> 
     return np.ascontiguousarray(inv)
 
 
-#: Voxels of linear extrapolation added at each line end before the spline of
+#: Voxels of quadratic extrapolation added at each line end before the spline of
 #: ``d`` is taken: a mirror-extended spline would bend a sloping displacement
 #: near the ends.
 _PAD = 6
 
 
-def _pad_linear(arr: np.ndarray, *, axis: int, pad: int) -> np.ndarray:
-    """Extend ``arr`` by ``pad`` samples at both ends of ``axis``, continuing the end slopes."""
+def _pad_quadratic(arr: np.ndarray, *, axis: int, pad: int) -> np.ndarray:
+    """Extend ``arr`` by ``pad`` samples at both ends of ``axis`` with the parabola
+    through the three end samples (linear for lines shorter than 3)."""
     a = np.moveaxis(arr, axis, -1)
     k = np.arange(1, pad + 1, dtype=np.float64)
-    lo = a[..., :1] - k[::-1] * (a[..., 1:2] - a[..., :1])
-    hi = a[..., -1:] + k * (a[..., -1:] - a[..., -2:-1])
+
+    def extend(e0, e1, e2):  # samples at 0, 1, 2 voxels in from the end; x = -k
+        slope = (-3.0 * e0 + 4.0 * e1 - e2) / 2.0
+        curve = (e0 - 2.0 * e1 + e2) / 2.0
+        return e0 - k * slope + k * k * curve
+
+    if a.shape[-1] >= 3:
+        lo = extend(a[..., :1], a[..., 1:2], a[..., 2:3])[..., ::-1]
+        hi = extend(a[..., -1:], a[..., -2:-1], a[..., -3:-2])
+    else:
+        lo = a[..., :1] - k[::-1] * (a[..., 1:2] - a[..., :1])
+        hi = a[..., -1:] + k * (a[..., -1:] - a[..., -2:-1])
     return np.moveaxis(np.concatenate([lo, a, hi], axis=-1), -1, axis)
 
 
@@ -262,7 +273,7 @@ def _newton_refine(disp: np.ndarray, inv: np.ndarray, *, axis: int, steps: int =
     shape = [1, 1, 1]
     shape[axis] = n
     y_d = np.arange(n, dtype=np.float64).reshape(shape)
-    padded = _pad_linear(disp, axis=axis, pad=_PAD)
+    padded = _pad_quadratic(disp, axis=axis, pad=_PAD)
     jac = displacement_jacobian(padded, pe_axis=axis)
     src = y_d + inv
     # Positions live on the padded line; the pads are dummies (sampled, ignored).
