@@ -57,7 +57,8 @@ def _check_complete(img: nib.Nifti1Image, path: Path, name: str | None) -> None:
     hdr = img.header
     fmap = img.file_map.get("image")
     data_path = Path(fmap.filename) if fmap is not None and fmap.filename else path
-    offset = int(hdr.get_data_offset()) if data_path == path else 0
+    # The proxy knows where the data block starts (the image's header copy may not).
+    offset = int(getattr(img.dataobj, "offset", hdr.get_data_offset()))
     expected = offset + int(np.prod(img.shape, dtype=np.int64)) * hdr.get_data_dtype().itemsize
     if str(data_path).endswith(".gz"):
         with open(data_path, "rb") as fh:
