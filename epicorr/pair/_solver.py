@@ -1,0 +1,414 @@
+"""Regularised Gauss-Newton solver for the reversed-gradient problem.
+
+Problem (per resolution level), with ``u`` the field in reference voxels
+(``u = v_ref * field_hz``, PE axis first)::
+
+    E(u) = 1/2 || r(u) ||^2  +  alpha/2 sum_a w_a || D+_a u ||^2  +  beta sum_k sum_y psi(1 + c_k u')
+
+* ``r = mean_{k in +} U_k - mean_{k in -} U_k``, ``U_k`` the Jacobian-modulated
+  unwarped images of :mod:`._model` (Chang & Fitzpatrick 1992);
+* diffusion (gradient) smoothness along all three axes, forward differences
+  with Neumann ends, weighted by ``w_a = (h_pe / h_a)^2`` so the penalty is on
+  the physical gradient (Ruthotto et al. 2012);
+* the barrier ``psi(v) = (v-1)^2 / v`` keeps every Jacobian ``1 + c_k u' > 0``;
+  the line search also rejects any step that would make one non-positive.
+
+Gauss-Newton: the data term's Hessian ``J^T J`` is block-diagonal with one
+pentadiagonal block per PE line; so is the barrier's.  Only the smoothness
+term couples lines.  Each Gauss-Newton system is solved by preconditioned
+conjugate gradients whose preconditioner is the exact line-wise part (data +
+barrier + PE smoothness + the diagonal of the cross-line smoothness),
+factorised by a banded LDL^T vectorised over all lines at once (Macdonald &
+Ruthotto 2018 exploit the same separability).
+
+Automatic regularisation weight (per level)
+-------------------------------------------
+``alpha = lam * trace(J^T J) / trace(L)`` at the level's starting point,
+where ``L`` is the smoothness Hessian (``sum_a w_a D+_a^T D+_a``).  The data
+Hessian's trace measures the image energy (intensity and gradient squared)
+that drives the fit at that resolution; dividing by ``trace(L)`` makes
+``lam`` dimensionless and independent of the grid size, image scaling and
+voxel size, so one ``lam`` serves every level and every input.  ``beta =
+beta_rel * alpha``.  The defaults (``lam``, ``beta_rel``) are common practice
+tuned on synthetic data, documented in :func:`epicorr.pair.estimate_field_from_pair`.
+
+References
+----------
+Chang H, Fitzpatrick JM. IEEE Trans Med Imaging 1992;11:319-329.
+
+Ruthotto L, Kugel H, Olesch J, Fischer B, Modersitzki J, Burger M, Wolters CH.
+Diffeomorphic susceptibility artifact correction of diffusion-weighted
+magnetic resonance images. Phys Med Biol 2012;57:5715-5731.
+
+Macdonald J, Ruthotto L. J Math Imaging Vis 2018;60:268-282.
+
+Nocedal J, Wright SJ. Numerical Optimization, 2nd ed. Springer 2006
+(Gauss-Newton, inexact Newton-CG, Armijo backtracking).
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from . import _model as M
+
+__all__ = ["LevelProblem", "solve_level", "downsample", "upsample_to", "factor_penta", "solve_penta"]
+
+
+@dataclass
+class LevelProblem:
+    """One resolution level.
+
+    Attributes
+    ----------
+    images : list of ndarray, shape (n, a, b)
+        Normalised images, PE axis first.
+    coefs : list of float
+        ``c_k = polarity_k * v_k / v_ref`` (displacement per unit ``u``).
+    weights : list of float
+        ``+1/n_plus`` or ``-1/n_minus``: the residual is ``sum_k w_k U_k``.
+    axis_weights : tuple of 3 float
+        ``w_a`` for the axes of the ``(n, a, b)`` array (``w_0 = 1``).
+    """
+
+    images: list
+    coefs: list
+    weights: list
+    axis_weights: tuple = (1.0, 1.0, 1.0)
+    info: dict = field(default_factory=dict)
+
+    def __post_init__(self):
+        self.samplers = [M.LineSampler(img) for img in self.images]
+
+
+def _dot(a, b):
+    """Inner product without BLAS threads (their start-up dominates at these sizes)."""
+    return float(np.einsum("i,i->", a.ravel(), b.ravel()))
+
+
+# ---------------------------------------------------------------- pentadiagonal LDL^T
+def factor_penta(h0, h1, h2):
+    """Vectorised LDL^T of symmetric pentadiagonal matrices, one per PE line.
+
+    ``h0, h1, h2`` have shape ``(n, ...)`` (see :func:`._model.gram_bands`).
+    Returns ``(dinv, l1, l2)`` with ``l1[i] = L[i, i-1]`` and ``l2[i] = L[i, i-2]``.
+    The loop runs over the ``n`` positions of a line; every step is a numpy
+    operation over all lines together.
+    """
+    n = h0.shape[0]
+    d = np.empty_like(h0)
+    l1 = np.zeros_like(h0)
+    l2 = np.zeros_like(h0)
+    floor = 1e-12 * max(float(np.mean(np.abs(h0))), 1e-300)
+    for i in range(n):
+        di = h0[i].copy()
+        if i >= 1:
+            di -= l1[i] ** 2 * d[i - 1]
+        if i >= 2:
+            di -= l2[i] ** 2 * d[i - 2]
+        np.maximum(di, floor, out=di)
+        d[i] = di
+        if i + 2 < n:
+            l2[i + 2] = h2[i] / di
+        if i + 1 < n:
+            t = h1[i].copy()
+            if i >= 1:
+                t -= l2[i + 1] * d[i - 1] * l1[i]
+            l1[i + 1] = t / di
+    return 1.0 / d, l1, l2
+
+
+def solve_penta(fac, rhs):
+    """Solve with the factors of :func:`factor_penta` (all lines at once)."""
+    dinv, l1, l2 = fac
+    n = rhs.shape[0]
+    z = np.array(rhs, dtype=np.float64, copy=True)
+    for i in range(1, n):
+        z[i] -= l1[i] * z[i - 1]
+        if i >= 2:
+            z[i] -= l2[i] * z[i - 2]
+    z *= dinv
+    for i in range(n - 2, -1, -1):
+        z[i] -= l1[i + 1] * z[i + 1]
+        if i + 2 < n:
+            z[i] -= l2[i + 2] * z[i + 2]
+    return z
+
+
+# ---------------------------------------------------------------- smoothness
+def _neighbour_count(n: int) -> np.ndarray:
+    c = np.full(n, 2.0)
+    if n == 1:
+        c[:] = 0.0
+    else:
+        c[0] = c[-1] = 1.0
+    return c
+
+
+def _laplacian(u, w):
+    """``sum_a w_a D+_a^T D+_a u`` (graph Laplacian, Neumann ends)."""
+    out = np.zeros_like(u)
+    for ax in range(u.ndim):
+        if u.shape[ax] < 2 or w[ax] == 0:
+            continue
+        du = np.diff(u, axis=ax)
+        sl_lo = [slice(None)] * u.ndim
+        sl_hi = [slice(None)] * u.ndim
+        sl_lo[ax] = slice(0, -1)
+        sl_hi[ax] = slice(1, None)
+        out[tuple(sl_lo)] -= w[ax] * du
+        out[tuple(sl_hi)] += w[ax] * du
+    return out
+
+
+def _smooth_energy(u, w):
+    return 0.5 * sum(w[ax] * float(np.sum(np.diff(u, axis=ax) ** 2))
+                     for ax in range(u.ndim) if u.shape[ax] > 1)
+
+
+def _cross_neighbours(x, w):
+    """``sum_{a>0} w_a * (sum of the two neighbours along a)`` (zero outside)."""
+    out = np.zeros_like(x)
+    for ax in range(1, x.ndim):
+        if x.shape[ax] < 2 or w[ax] == 0:
+            continue
+        sl_lo = [slice(None)] * x.ndim
+        sl_hi = [slice(None)] * x.ndim
+        sl_lo[ax] = slice(0, -1)
+        sl_hi[ax] = slice(1, None)
+        out[tuple(sl_lo)] += w[ax] * x[tuple(sl_hi)]
+        out[tuple(sl_hi)] += w[ax] * x[tuple(sl_lo)]
+    return out
+
+
+def _smooth_diag_cross(shape, w):
+    diag = np.zeros(shape)
+    for ax in range(1, len(shape)):
+        cnt = _neighbour_count(shape[ax])
+        bshape = [1] * len(shape)
+        bshape[ax] = shape[ax]
+        diag += w[ax] * cnt.reshape(bshape)
+    return diag
+
+
+# ---------------------------------------------------------------- evaluation
+def _evaluate(prob: LevelProblem, u, alpha, beta, *, full: bool):
+    """Objective (and, when ``full``, residual, Jacobian and barrier terms)."""
+    w = prob.axis_weights
+    du = M.derivative_pe(u)
+    r = np.zeros_like(u)
+    A = np.zeros_like(u) if full else None
+    B = np.zeros_like(u) if full else None
+    bar = 0.0
+    bar_terms = []
+    min_jac = np.inf
+    for smp, c, wk in zip(prob.samplers, prob.coefs, prob.weights):
+        jac = 1.0 + c * du
+        mj = float(jac.min())
+        min_jac = min(min_jac, mj)
+        if mj <= 0:
+            return np.inf, None
+        if full:
+            v, g = smp.sample(c * u, with_derivative=True)
+            A += (wk * c) * g * jac
+            B += (wk * c) * v
+        else:
+            v = smp.sample(c * u, with_derivative=False)
+        r += wk * v * jac
+        psi, d1, d2 = M.barrier(jac)
+        bar += float(psi.sum())
+        if full:
+            bar_terms.append((c, d1, d2))
+    energy = 0.5 * float(np.sum(r * r)) + alpha * _smooth_energy(u, w) + beta * bar
+    if not full:
+        return energy, None
+    return energy, dict(r=r, A=A, B=B, bar_terms=bar_terms, min_jac=min_jac)
+
+
+def _line_hessian(prob, ev, alpha, beta, shape):
+    """Bands of the line-wise part of the Gauss-Newton Hessian, and the data trace."""
+    w = prob.axis_weights
+    lo, mid, up = M.jacobian_bands(ev["A"], ev["B"])
+    bands = M.gram_bands(lo, mid, up)
+    data_trace = float(bands[0].sum())
+    for c, _d1, d2 in ev["bar_terms"]:
+        blo, bmid, bup = M.jacobian_bands(None, c * np.sqrt(d2))
+        M.gram_bands(blo, bmid, bup, out=bands, scale=beta)
+    h0, h1, h2 = bands
+    n = shape[0]
+    if n > 1:
+        h0 += alpha * w[0] * _neighbour_count(n).reshape((n,) + (1,) * (len(shape) - 1))
+        h1[:-1] -= alpha * w[0]
+    h0 += alpha * _smooth_diag_cross(shape, w)
+    return (lo, mid, up), bands, data_trace
+
+
+def _gradient(prob, ev, jb, u, alpha, beta):
+    g = M.apply_bands_T(*jb, ev["r"])
+    g += alpha * _laplacian(u, prob.axis_weights)
+    for c, d1, _d2 in ev["bar_terms"]:
+        blo, bmid, bup = M.jacobian_bands(None, np.full_like(u, c))
+        g += beta * M.apply_bands_T(blo, bmid, bup, d1)
+    return g
+
+
+def _pcg(bands, alpha, w, rhs, *, maxiter, rtol):
+    """PCG for ``H x = rhs``; H = line bands - alpha * cross-line neighbour coupling."""
+    h0, h1, h2 = bands
+    fac = factor_penta(h0, h1, h2)
+
+    def hmul(x):
+        return M.band_matvec(h0, h1, h2, x) - alpha * _cross_neighbours(x, w)
+
+    x = np.zeros_like(rhs)
+    res = rhs.copy()
+    z = solve_penta(fac, res)
+    p = z.copy()
+    rz = float(_dot(res, z))
+    norm0 = float(np.sqrt(_dot(rhs, rhs)))
+    it = 0
+    if norm0 == 0:
+        return x, 0
+    for it in range(1, maxiter + 1):
+        q = hmul(p)
+        pq = float(_dot(p, q))
+        if pq <= 0:
+            break
+        a = rz / pq
+        x += a * p
+        res -= a * q
+        if float(np.sqrt(_dot(res, res))) <= rtol * norm0:
+            break
+        z = solve_penta(fac, res)
+        rz_new = float(_dot(res, z))
+        p *= rz_new / rz
+        p += z
+        rz = rz_new
+    return x, it
+
+
+def solve_level(prob: LevelProblem, u0, *, lam, beta_rel, max_iter, tol=1e-4,
+                cg_maxiter=15, cg_rtol=2e-2):
+    """Minimise ``E`` on one level by Gauss-Newton-PCG with Armijo backtracking.
+
+    Parameters
+    ----------
+    prob : LevelProblem
+    u0 : ndarray, shape (n, a, b)
+        Starting field, reference voxels of this level.
+    lam : float
+        Dimensionless regularisation constant (see the module docstring).
+    beta_rel : float
+        Barrier weight relative to ``alpha``.
+    max_iter : int
+        Gauss-Newton iterations at most.
+    tol : float
+        Stop when the relative decrease of ``E`` is below ``tol``.
+
+    Returns
+    -------
+    u : ndarray
+    info : dict
+        ``alpha``, ``beta``, ``iterations``, ``cg_iterations``, ``energy``
+        (first and last), ``hess_diag`` (Gauss-Newton Hessian diagonal at the
+        solution), ``residual`` (at the solution), ``min_jacobian``.
+    """
+    t0 = time.perf_counter()
+    u = np.array(u0, dtype=np.float64, copy=True)
+    shape = u.shape
+    w = prob.axis_weights
+    # Automatic weight: alpha = lam * trace(J^T J) / trace(L) at the start.
+    e0, ev = _evaluate(prob, u, 0.0, 0.0, full=True)
+    if ev is None:
+        u[...] = 0.0
+        e0, ev = _evaluate(prob, u, 0.0, 0.0, full=True)
+    jb, bands, data_trace = _line_hessian(prob, ev, 0.0, 0.0, shape)
+    lap_trace = float(w[0] * 2 * max(shape[0] - 1, 0) * np.prod(shape[1:])
+                      + _smooth_diag_cross(shape, w).sum())
+    alpha = lam * data_trace / max(lap_trace, 1e-300)
+    if not np.isfinite(alpha) or alpha <= 0:
+        alpha = lam
+    beta = beta_rel * alpha
+    energy, ev = _evaluate(prob, u, alpha, beta, full=True)
+    energies = [energy]
+    cg_total = 0
+    it = 0
+    for it in range(1, max_iter + 1):
+        jb, bands, _ = _line_hessian(prob, ev, alpha, beta, shape)
+        g = _gradient(prob, ev, jb, u, alpha, beta)
+        step, ncg = _pcg(bands, alpha, w, -g, maxiter=cg_maxiter, rtol=cg_rtol)
+        cg_total += ncg
+        slope = float(_dot(g, step))
+        if slope >= 0:  # not a descent direction (should not happen): steepest descent
+            step = -g
+            slope = -float(_dot(g, g))
+        t = 1.0
+        accepted = False
+        for _ in range(12):
+            cand = u + t * step
+            # Evaluated in full: the accepted trial's Jacobian is reused next iteration.
+            e_new, ev_new = _evaluate(prob, cand, alpha, beta, full=True)
+            if np.isfinite(e_new) and e_new <= energy + 1e-4 * t * slope:
+                accepted = True
+                break
+            t *= 0.5
+        if not accepted:
+            break
+        u = cand
+        decrease = energy - e_new
+        energy, ev = e_new, ev_new
+        energies.append(energy)
+        if decrease <= tol * abs(energies[0]):
+            break
+    jb, bands, _ = _line_hessian(prob, ev, alpha, beta, shape)
+    hdiag = bands[0]
+    info = dict(alpha=alpha, beta=beta, iterations=it, cg_iterations=cg_total,
+                energy_start=energies[0], energy_end=energy, hess_diag=hdiag,
+                residual=ev["r"], min_jacobian=ev["min_jac"],
+                seconds=time.perf_counter() - t0)
+    return u, info
+
+
+# ---------------------------------------------------------------- pyramid
+def downsample(x, factors):
+    """Block mean by ``factors`` (1 or 2 per axis); odd sizes are edge-padded."""
+    out = np.asarray(x, dtype=np.float64)
+    for ax, f in enumerate(factors):
+        if f == 1:
+            continue
+        n = out.shape[ax]
+        if n % 2:
+            pad = [(0, 0)] * out.ndim
+            pad[ax] = (0, 1)
+            out = np.pad(out, pad, mode="edge")
+        sl0 = [slice(None)] * out.ndim
+        sl1 = [slice(None)] * out.ndim
+        sl0[ax] = slice(0, None, 2)
+        sl1[ax] = slice(1, None, 2)
+        out = 0.5 * (out[tuple(sl0)] + out[tuple(sl1)])
+    return out
+
+
+def upsample_to(x, shape, factors):
+    """Linear interpolation from a :func:`downsample` grid back to ``shape``.
+
+    Fine voxel ``i`` sits at coarse coordinate ``(i - 0.5) / 2`` on an axis
+    that was halved (block centres), clamped at the ends.
+    """
+    out = np.asarray(x, dtype=np.float64)
+    for ax, f in enumerate(factors):
+        if f == 1:
+            continue
+        nc = out.shape[ax]
+        pos = np.clip((np.arange(shape[ax]) - 0.5) / 2.0, 0, nc - 1)
+        i0 = np.minimum(np.floor(pos).astype(int), max(nc - 2, 0))
+        t = pos - i0
+        i1 = np.minimum(i0 + 1, nc - 1)
+        bshape = [1] * out.ndim
+        bshape[ax] = shape[ax]
+        t = t.reshape(bshape)
+        out = np.take(out, i0, axis=ax) * (1 - t) + np.take(out, i1, axis=ax) * t
+    return out

@@ -1,0 +1,301 @@
+"""Field from a reversed phase-encode pair: model, solver, restoration, inputs.
+
+Phantoms come from ``tests/pair_phantom.py``, which distorts an analytic
+object by the Chang & Fitzpatrick (1992) intensity law with numpy's own
+piecewise-linear resampling (independent of the package's cubic sampler).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import linalg, ndimage
+
+from epicorr.errors import EpicorrInputError
+from epicorr.pair import PairEstimate, estimate_field_from_pair
+from epicorr.pair import _combine, _model, _solver
+
+from pair_phantom import distort, pair
+
+AFF = np.diag([2.0, 2.0, 2.0, 1.0])
+VPH = 0.05  # s: 0.52 ms echo spacing x 96 lines (common practice for 3 T EPI)
+
+
+def _rmse(a, b, mask):
+    return float(np.sqrt(np.mean((a - b)[mask] ** 2)))
+
+
+# ----------------------------------------------------------------- the model
+def test_cubic_sampler_reproduces_quadratics():
+    # Keys 1981: cubic convolution with a = -1/2 reproduces polynomials up to degree 2 exactly.
+    y = np.arange(40, dtype=float)
+    line = 0.3 * y ** 2 - 2.0 * y + 5.0
+    img = np.repeat(line[:, None], 3, axis=1)
+    shift = np.full_like(img, 0.37)
+    shift[:3] = 0.0
+    shift[-4:] = 0.0
+    v, g = _model.interp_pe(img, shift)
+    x = y[:, None] + shift
+    inner = slice(3, -4)
+    np.testing.assert_allclose(v[inner], (0.3 * x ** 2 - 2 * x + 5)[inner], atol=1e-9)
+    np.testing.assert_allclose(g[inner], (0.6 * x - 2)[inner], atol=1e-9)
+
+
+def test_unwarp_uniform_shift_matches_scipy():
+    # A uniform displacement is a translation: compare with scipy.ndimage.shift (cubic spline).
+    rng = np.random.default_rng(1)
+    img = ndimage.gaussian_filter(rng.standard_normal((64, 5, 4)), (3, 0, 0))
+    d = np.full(img.shape, 2.4)
+    ours = _model.unwarp(img, d)
+    ref = ndimage.shift(img, (-2.4, 0, 0), order=3, mode="nearest")
+    np.testing.assert_allclose(ours[8:-8], ref[8:-8], atol=2e-3 * np.abs(img).max())
+
+
+def test_unwarp_conserves_line_signal():
+    # Chang & Fitzpatrick 1992: I(y + d) (1 + d') integrates to the object's line integral.
+    n = 128
+    y = np.arange(n, dtype=float)
+    obj = np.exp(-((y - 64) / 12.0) ** 2)[:, None]
+    f = (40.0 * np.exp(-((y - 60) / 20.0) ** 2))[:, None]
+    im = distort(obj, f, pe_axis=0, polarity=1, voxels_per_hz=VPH)
+    back = _model.unwarp(im, VPH * f)
+    assert abs(back.sum() - obj.sum()) < 1e-3 * obj.sum()
+    assert np.max(np.abs(back - obj)) < 0.02
+
+
+def test_pentadiagonal_solver_matches_solve_banded():
+    # Reference: scipy.linalg.solve_banded on each line.
+    rng = np.random.default_rng(2)
+    n, m = 30, 7
+    h1 = rng.normal(size=(n, m)) * 0.3
+    h2 = rng.normal(size=(n, m)) * 0.2
+    h0 = 2.0 + np.abs(h1).sum() / n + rng.random((n, m))
+    h1[-1] = 0
+    h2[-2:] = 0
+    b = rng.normal(size=(n, m))
+    x = _solver.solve_penta(_solver.factor_penta(h0, h1, h2), b)
+    for j in range(m):
+        ab = np.zeros((5, n))
+        ab[0, 2:] = h2[:-2, j]
+        ab[1, 1:] = h1[:-1, j]
+        ab[2] = h0[:, j]
+        ab[3, :-1] = h1[:-1, j]
+        ab[4, :-2] = h2[:-2, j]
+        np.testing.assert_allclose(x[:, j], linalg.solve_banded((2, 2), ab, b[:, j]), rtol=1e-10)
+    np.testing.assert_allclose(_model.band_matvec(h0, h1, h2, x), b, atol=1e-10)
+
+
+def test_objective_gradient_and_jacobian_match_finite_differences():
+    p, m, f, _obj, _mask = pair((24, 24, 12), snr=0)
+    imgs = [np.moveaxis(x, 1, 0).copy() for x in (p, m)]
+    prob = _solver.LevelProblem(images=imgs, coefs=[1.0, -1.0], weights=[1.0, -1.0],
+                                axis_weights=(1.0, 1.0, 0.5))
+    u = 0.5 * VPH * np.moveaxis(f, 1, 0)
+    alpha, beta = 0.05, 0.01
+    e0, ev = _solver._evaluate(prob, u, alpha, beta, full=True)
+    jb, _bands, _ = _solver._line_hessian(prob, ev, alpha, beta, u.shape)
+    g = _solver._gradient(prob, ev, jb, u, alpha, beta)
+    v = np.random.default_rng(3).standard_normal(u.shape)
+    h = 1e-5
+    ep, _ = _solver._evaluate(prob, u + h * v, alpha, beta, full=False)
+    em, _ = _solver._evaluate(prob, u - h * v, alpha, beta, full=False)
+    assert abs((ep - em) / (2 * h) - float(np.sum(g * v))) < 1e-5 * abs(float(np.sum(g * v))) + 1e-8
+    _, evp = _solver._evaluate(prob, u + h * v, alpha, beta, full=True)
+    jv = _model.apply_bands(*jb, v)
+    assert np.linalg.norm((evp["r"] - ev["r"]) / h - jv) < 1e-3 * np.linalg.norm(jv)
+
+
+def test_barrier_blocks_folding():
+    psi, d1, d2 = _model.barrier(np.array([1.0, 0.5, 0.0, -0.2]))
+    assert psi[0] == 0 and d1[0] == 0 and np.isinf(psi[2]) and np.isinf(psi[3])
+    assert psi[1] == pytest.approx(0.5)  # (0.5 - 1)^2 / 0.5
+
+
+# ----------------------------------------------------------------- recovery
+@pytest.fixture(scope="module")
+def phantom():
+    return pair((48, 48, 32), pe_axis=1, voxels_per_hz=VPH, snr=40.0, seed=4)
+
+
+@pytest.fixture(scope="module")
+def estimate(phantom):
+    p, m, _f, _o, mask = phantom
+    return estimate_field_from_pair([p, m], pe_directions=["j", "j-"], voxels_per_hz=VPH,
+                                    affine=AFF, mask=mask)
+
+
+def test_recovers_known_field(phantom, estimate):
+    p, m, f, obj, mask = phantom
+    est = estimate
+    assert isinstance(est, PairEstimate)
+    assert est.field_hz.shape == p.shape
+    # Field with peak displacement ~6.5 voxels; our acceptance: <= 4 Hz RMSE in the brain.
+    err = _rmse(est.field_hz, f, mask)
+    assert err < 4.0, err
+    assert np.corrcoef(est.field_hz[mask], f[mask])[0, 1] > 0.98
+    assert est.info["agreement_after"] >= 0.97
+    assert est.info["agreement_after"] > est.info["agreement_before"]
+    # Every image's Jacobian stayed positive (invertibility constraint).
+    assert all(li["min_jacobian"] > 0 for li in est.info["levels"])
+    assert len(est.info["regularization"]) == len(est.info["levels"])
+    assert np.all(np.isfinite(est.sigma_hz)) and np.all(est.sigma_hz >= 0)
+    # Corrected reference: closer to the object than either distorted input.
+    scale = obj[mask].mean() / est.corrected[mask].mean()
+    e_corr = _rmse(est.corrected * scale, obj, mask)
+    assert e_corr < 0.6 * min(_rmse(p, obj, mask), _rmse(m, obj, mask))
+
+
+def test_swapping_polarities_gives_the_same_field(phantom, estimate):
+    p, m, _f, _o, mask = phantom
+    swapped = estimate_field_from_pair([m, p], pe_directions=["j-", "j"], voxels_per_hz=VPH,
+                                       affine=AFF, mask=mask)
+    # Same physics, the images only listed in the other order: same field (the field is not negated).
+    assert _rmse(swapped.field_hz, estimate.field_hz, mask) < 0.5
+
+
+def test_pe_axis_i_and_invertibility_under_strong_field():
+    # Peak displacement 7 voxels with |d'| up to about 0.9: near folding, still invertible.
+    p, m, f, _o, mask = pair((48, 40, 24), pe_axis=0, voxels_per_hz=VPH, snr=60.0, seed=5, peak=140.0)
+    est = estimate_field_from_pair([p, m], pe_directions=["i", "i-"], voxels_per_hz=VPH,
+                                   affine=AFF, mask=mask)
+    assert _rmse(est.field_hz, f, mask) < 6.0
+    d = VPH * est.field_hz
+    jac = 1.0 + np.gradient(d, axis=0)
+    assert jac.min() > 0 and (1.0 - np.gradient(d, axis=0)).min() > 0
+
+
+def test_noise_raises_uncertainty():
+    p1, m1, _f, _o, mask = pair((32, 32, 16), snr=80.0, seed=6)
+    p2, m2, _f, _o, _ = pair((32, 32, 16), snr=10.0, seed=6)
+    lo = estimate_field_from_pair([p1, m1], pe_directions=["j", "j-"], voxels_per_hz=VPH,
+                                  affine=AFF, mask=mask, rigid=False, combine=False)
+    hi = estimate_field_from_pair([p2, m2], pe_directions=["j", "j-"], voxels_per_hz=VPH,
+                                  affine=AFF, mask=mask, rigid=False, combine=False)
+    assert np.median(hi.sigma_hz[mask]) > 1.5 * np.median(lo.sigma_hz[mask])
+
+
+def test_four_images_series_and_different_readouts():
+    shape = (40, 40, 24)
+    rng = np.random.default_rng(7)
+    _p, _m, f, obj, mask = pair(shape, snr=0, seed=7)
+    vphs = [0.05, 0.035, 0.05, 0.035]
+    pols = [1, 1, -1, -1]
+    imgs = []
+    for v, pol in zip(vphs, pols):
+        clean = distort(obj, f, pe_axis=1, polarity=pol, voxels_per_hz=v)
+        # a 2-volume series per image
+        imgs.append(np.stack([clean + rng.standard_normal(shape) / 40 for _ in range(2)], -1))
+    est = estimate_field_from_pair(imgs, pe_directions=["j", "j", "j-", "j-"],
+                                   voxels_per_hz=vphs, affine=AFF, mask=mask, rigid=False)
+    assert _rmse(est.field_hz, f, mask) < 4.0
+    assert est.info["voxels_per_hz"] == vphs
+    assert len(est.info["notes"]["series_motion_mm"][0]) == 1
+
+
+def test_rigid_motion_between_polarities_is_removed():
+    shape = (48, 48, 32)
+    p, _m, f, obj, mask = pair(shape, snr=60.0, seed=8)
+    # Move the head by 3 degrees about the slice axis before the reversed acquisition
+    # (the field moves with it); the PE translation is zero.
+    ang = np.deg2rad(3.0)
+    rot = np.array([[np.cos(ang), -np.sin(ang), 0], [np.sin(ang), np.cos(ang), 0], [0, 0, 1]])
+    c = (np.array(shape) - 1) / 2
+    moved_obj = ndimage.affine_transform(obj, rot, offset=c - rot @ c, order=1)
+    moved_f = ndimage.affine_transform(f, rot, offset=c - rot @ c, order=1, mode="nearest")
+    m = distort(moved_obj, moved_f, pe_axis=1, polarity=-1, voxels_per_hz=VPH)
+    m = np.abs(m + np.random.default_rng(8).standard_normal(shape) / 60)
+    kw = dict(pe_directions=["j", "j-"], voxels_per_hz=VPH, affine=AFF, mask=mask)
+    with_rigid = estimate_field_from_pair([p, m], **kw)
+    without = estimate_field_from_pair([p, m], rigid=False, **kw)
+    assert with_rigid.info["rigid"] and with_rigid.info["rigid"][0][1] > 1.0  # mm moved
+    assert _rmse(with_rigid.field_hz, f, mask) < _rmse(without.field_hz, f, mask)
+    assert with_rigid.info["agreement_after"] > without.info["agreement_after"]
+
+
+# ----------------------------------------------------------------- restoration
+def test_forward_matrix_integer_shift_and_conservation():
+    rng = np.random.default_rng(9)
+    t = rng.random((20, 3))
+    a = _combine.forward_matrix(np.full((20, 3), 2.0))
+    moved = (a @ t.ravel()).reshape(20, 3)
+    np.testing.assert_allclose(moved[2:], t[:-2], atol=1e-12)  # exact translation by 2 voxels
+    d = 3.0 * np.sin(np.linspace(0, np.pi, 20))[:, None] * np.ones((1, 3))
+    a = _combine.forward_matrix(d)
+    # Signal conservation of the box-integration model (columns sum to one inside the FOV).
+    np.testing.assert_allclose(np.asarray(a.sum(axis=0)).ravel(), 1.0, atol=1e-12)
+
+
+def test_least_squares_restoration_beats_the_jacobian_average():
+    p, m, f, obj, mask = pair((48, 48, 16), snr=30.0, seed=10, peak=160.0)
+    imgs = [np.moveaxis(x, 1, 0).copy() for x in (p, m)]
+    d = [VPH * np.moveaxis(f, 1, 0), -VPH * np.moveaxis(f, 1, 0)]
+    restored, info = _combine.restore(imgs, d)
+    average = np.mean([_model.unwarp(i, dd) for i, dd in zip(imgs, d)], axis=0)
+    o = np.moveaxis(obj, 1, 0)
+    mk = np.moveaxis(mask, 1, 0)
+    # Where one polarity is strongly compressed (|d'| > 0.3) the restoration is better.
+    strong = mk & (np.abs(np.gradient(d[0], axis=0)) > 0.3)
+    assert strong.sum() > 50
+    assert _rmse(restored, o, strong) < _rmse(average, o, strong)
+    assert info["relative_residual"] < 0.2
+
+
+# ----------------------------------------------------------------- bad input
+def _two(shape=(16, 16, 8)):
+    rng = np.random.default_rng(11)
+    return [rng.random(shape) + 0.1, rng.random(shape) + 0.1]
+
+
+def test_same_polarity_rejected():
+    with pytest.raises(EpicorrInputError, match="same phase-encode polarity") as err:
+        estimate_field_from_pair(_two(), pe_directions=["j", "j"], voxels_per_hz=VPH, affine=AFF,
+                                 files=["a_epi.nii.gz", "b_epi.nii.gz"])
+    assert "PhaseEncodingDirection" in str(err.value)
+
+
+@pytest.mark.parametrize("fill,word", [(np.nan, "NaN"), (0.0, "all zero")])
+def test_empty_volumes_rejected_with_file_name(fill, word):
+    imgs = _two()
+    imgs[1] = np.full_like(imgs[1], fill)
+    with pytest.raises(EpicorrInputError, match=word) as err:
+        estimate_field_from_pair(imgs, pe_directions=["j", "j-"], voxels_per_hz=VPH, affine=AFF,
+                                 files=["a_epi.nii.gz", "b_epi.nii.gz"])
+    assert "b_epi.nii.gz" in str(err.value)
+
+
+def test_missing_readout_and_mixed_axes_rejected():
+    with pytest.raises(EpicorrInputError, match="TotalReadoutTime"):
+        estimate_field_from_pair(_two(), pe_directions=["j", "j-"], voxels_per_hz=[VPH, None],
+                                 affine=AFF)
+    with pytest.raises(EpicorrInputError, match="different phase-encode axes"):
+        estimate_field_from_pair(_two(), pe_directions=["i", "j-"], voxels_per_hz=VPH, affine=AFF)
+    with pytest.raises(EpicorrInputError, match="at least two"):
+        estimate_field_from_pair(_two()[:1], pe_directions=["j"], voxels_per_hz=VPH, affine=AFF)
+
+
+def test_irreconcilable_grids_rejected():
+    imgs = _two()
+    rotated = AFF.copy()
+    rotated[:3, :3] = AFF[:3, :3][:, [1, 0, 2]]  # PE axis j now points along world x
+    with pytest.raises(EpicorrInputError, match="another way") as err:
+        estimate_field_from_pair(imgs, pe_directions=["j", "j-"], voxels_per_hz=VPH,
+                                 affine=[AFF, rotated], files=["a.nii", "b.nii"])
+    assert "b.nii" in str(err.value)
+    far = AFF.copy()
+    far[:3, 3] = [500.0, 0, 0]
+    with pytest.raises(EpicorrInputError, match="covers only"):
+        estimate_field_from_pair(imgs, pe_directions=["j", "j-"], voxels_per_hz=VPH,
+                                 affine=[AFF, far])
+
+
+def test_shifted_grid_is_reconciled():
+    p, m, f, _o, mask = pair((40, 40, 24), snr=60.0, seed=12)
+    shifted = AFF.copy()
+    shifted[2, 3] = 2.0  # one slice along k: resampled onto the first grid
+    m_shift = ndimage.shift(m, (0, 0, -1.0), order=1, mode="nearest")
+    est = estimate_field_from_pair([p, m_shift], pe_directions=["j", "j-"], voxels_per_hz=VPH,
+                                   affine=[AFF, shifted], mask=mask, rigid=False)
+    assert est.info["notes"]["resampled"] == [1]
+    inner = mask.copy()
+    inner[..., :2] = inner[..., -2:] = False
+    assert _rmse(est.field_hz, f, inner) < 5.0
