@@ -159,6 +159,23 @@ def _attach_magnitudes(groups: dict[tuple, list[BidsFile]]) -> None:
                 break
 
 
+def _adopt_unlabelled(groups: dict[tuple, list[BidsFile]]) -> None:
+    """Files without an identifier join an identified field map with the same name stem.
+
+    BIDS asks for ``B0FieldIdentifier`` on every file of a field map; converters
+    sometimes write it on the phase/field image only.  Such a magnitude image
+    (same entities, same folder) is taken into the identified set.
+    """
+    for key in [k for k in groups if k[0] == "id"]:
+        stems = set()
+        for f in groups[key]:
+            family = _FAMILY[f.suffix]
+            ents = {k: v for k, v in f.entities.items() if not (family == "epi" and k == "dir")}
+            stems.add(build_name(ents, "fmap"))
+        for other in [k for k in groups if k[0] == "stem" and k[1] in stems]:
+            groups[key].extend(groups.pop(other))
+
+
 def _check_keys(dataset: BidsDataset, f: BidsFile) -> None:
     meta = dataset.metadata(f)
     for key in _REQUIRED_KEYS.get(f.suffix, ()):
@@ -214,7 +231,8 @@ def _build(dataset: BidsDataset, key: tuple, files: list[BidsFile]) -> FieldSour
             have = sorted(by_suffix)
             raise EpicorrInputError(f"the {kind.value} field map lacks its {role} image "
                                     f"(found {', '.join(have)})", file=files[0].path,
-                                    hint=f"add the {role} image beside it")
+                                    hint=f"add the {role} image beside it (and give every file "
+                                         "of one field map the same B0FieldIdentifier)")
     for f in by_suffix.values():
         _check_keys(dataset, f)
     roles = {r: by_suffix[r] for r in required + optional if r in by_suffix}
@@ -237,6 +255,7 @@ def find_field_sources(dataset: BidsDataset, subject: str) -> list[FieldSource]:
         for key in _group_key(dataset, f):
             groups.setdefault(key, []).append(f)
     _attach_magnitudes(groups)
+    _adopt_unlabelled(groups)
     sources = []
     for key in sorted(groups):
         files = groups[key]
