@@ -85,8 +85,9 @@ def dipole_field_hz(chi_ppm, *, affine, b0_tesla=3.0, pad_factor=2, background_p
         Voxel -> world (RAS+ mm) of the grid.
     b0_tesla : float
         Main field, T.
-    pad_factor : float
-        Zero-padding: the FFT grid is at least ``pad_factor`` times the array along each axis.
+    pad_factor : float or 3 floats
+        Zero-padding: the FFT grid is at least ``pad_factor`` times the array along each
+        axis (per axis when a sequence; 1 = no padding, i.e. periodic along that axis).
     background_ppm : float, optional
         Susceptibility of the surroundings (default: median of the border voxels).
     b0_direction : 3 floats
@@ -103,7 +104,9 @@ def dipole_field_hz(chi_ppm, *, affine, b0_tesla=3.0, pad_factor=2, background_p
                                  chi[:, :, [0, -1]].ravel()])
         background_ppm = float(np.median(border))
     rel = (chi - background_ppm) * 1e-6
-    big = tuple(sfft.next_fast_len(int(np.ceil(n * max(pad_factor, 1.0)))) for n in chi.shape)
+    pads = np.broadcast_to(np.asarray(pad_factor, float), (3,))
+    big = tuple(n if pf <= 1 else sfft.next_fast_len(int(np.ceil(n * pf)))
+                for n, pf in zip(chi.shape, pads))
     kernel = dipole_kernel(big, affine=affine, b0_direction=b0_direction)
     spec = sfft.fftn(rel, s=big, workers=-1)
     db = sfft.ifftn(spec * kernel, workers=-1).real
