@@ -14,7 +14,9 @@ Typical use::
 
 from ._dipole import dipole_field_hz, dipole_kernel, shim
 from ._epi import line_times, simulate_epi, true_retained_signal
+from ._gre import DualEcho, phase_to_integer, resample_to_grid, simulate_dual_echo
 from ._head import LABELS, Head, default_affine, rigid_matrix, synthetic_head
+from ._motion import motion_matrix, rigid_motion
 
 __all__ = [
     "Head",
@@ -28,4 +30,10 @@ __all__ = [
     "simulate_epi",
     "true_retained_signal",
     "line_times",
+    "DualEcho",
+    "simulate_dual_echo",
+    "resample_to_grid",
+    "phase_to_integer",
+    "motion_matrix",
+    "rigid_motion",
 ]
