@@ -13,6 +13,7 @@ External references used by the checks:
 
 from __future__ import annotations
 
+import json
 import math
 
 import numpy as np
@@ -170,6 +171,13 @@ def test_echo_leaving_the_window_loses_the_signal_and_polarity_decides():
         else:           # compression: echo 37 lines late, beyond the last line
             assert kept == 0.0 and centre < 0.2, centre
     assert pe_retained(-0.1, echo_time=TE, effective_echo_spacing=EES, n_pe=n) == 0.0  # no echo
+    # Q = 3: echo at 10 ms, before the first line (TE - 32 EES = 14 ms): lost
+    assert pe_retained(3.0, echo_time=TE, effective_echo_spacing=EES, n_pe=n) == 0.0
+    # an asymmetric window with only 11 lines after the centre loses a late echo sooner:
+    q_late = 1 / (1 + 14 * EES / TE)  # echo 14 lines late
+    assert pe_retained(q_late, echo_time=TE, effective_echo_spacing=EES, n_pe=n) == 1.0
+    assert pe_retained(q_late, echo_time=TE, effective_echo_spacing=EES, n_pe=n,
+                       lines_before_centre=n - 12) == 0.0
 
 
 def test_readout_condition_against_sampled_phase_ramp():
@@ -296,6 +304,7 @@ def test_prediction_records_slice_thickness_source_and_validates():
     p = predict_retained_signal(f, **kw)
     assert p.info["slice_thickness_mm"] == 4.0 and "voxel size" in p.info["slice_thickness_source"]
     assert np.all(p.retained == 1.0) and not p.mask.any()
+    json.dumps(p.info)  # the info dict goes into output sidecars as is
     p2 = predict_retained_signal(f, slice_thickness_mm=3.0, sources={"slice_thickness_mm": "sidecar SliceThickness"}, **kw)
     assert p2.info["slice_thickness_mm"] == 3.0
     assert p2.info["slice_thickness_source"] == "sidecar SliceThickness"
