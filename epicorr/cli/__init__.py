@@ -31,7 +31,7 @@ CAUTION = (
 )
 
 #: Sub-command modules, in the order ``--help`` lists them.
-COMMAND_MODULES: tuple[str, ...] = ("demo",)
+COMMAND_MODULES: tuple[str, ...] = ("run", "files", "demo")
 
 EXIT_OK, EXIT_FAILED, EXIT_BAD_INPUT = 0, 1, 2
 
