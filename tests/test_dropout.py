@@ -295,6 +295,12 @@ def test_flipped_pe_what_if_for_an_in_plane_gradient():
     s = summarize_dropout(pred, field_hz=f)
     assert s.what_if["flipped_pe"]["dropout_volume_ml"] == 0
     assert s.what_if["flipped_pe"]["change_ml"] == pytest.approx(-s.dropout_volume_ml)
+    # the PE echo term can be switched off; the echo factor is still reported
+    off = predict_retained_signal(f, affine=_affine(zooms), pe="j-", effective_echo_spacing=EES,
+                                  n_pe=32, echo_time=TE, readout_condition=False,
+                                  pe_echo_condition=False)
+    assert not off.mask.any() and off.info["pe_echo_condition"] is False
+    np.testing.assert_allclose(off.echo_factor, pred.echo_factor)
 
 
 def test_prediction_records_slice_thickness_source_and_validates():
