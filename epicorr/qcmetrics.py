@@ -192,6 +192,17 @@ class Metric:
     detail: str = ""
     rule: str = ""
 
+    @classmethod
+    def from_dict(cls, row: dict) -> "Metric":
+        """Rebuild a metric from :func:`dataclasses.asdict` output (e.g. read back from JSON).
+
+        A ``value`` of ``None`` (how JSON stores a metric that could not be
+        computed) becomes NaN.
+        """
+        known = {f: row[f] for f in cls.__dataclass_fields__ if f in row}
+        known["value"] = float("nan") if known.get("value") is None else float(known["value"])
+        return cls(**known)
+
     @property
     def display_value(self) -> str:
         """``value`` formatted for a table (shares as percentages)."""

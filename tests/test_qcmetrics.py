@@ -171,3 +171,20 @@ def test_target_metrics_rejects_bad_inputs():
     with pytest.raises(EpicorrInputError, match="brain_mask"):
         target_metrics(field_hz=z, displacement_vox=z, brain_mask=np.zeros((3, 3, 3), bool),
                        voxel_size_mm=(1, 1, 1), pe_axis=1)
+
+
+def test_metric_round_trips_through_json_rows():
+    # The QC node stores dataclasses.asdict rows in JSON, with None for non-finite values.
+    import dataclasses
+    import json
+
+    shape = (6, 8, 5)
+    fld = np.full(shape, 20.0)
+    ms = target_metrics(field_hz=fld, displacement_vox=fld * 0.01, brain_mask=None,
+                        voxel_size_mm=(2, 2, 2), pe_axis=1, runtime_s=3.0)
+    rows = json.loads(json.dumps([dataclasses.asdict(m) for m in ms]))
+    back = [type(ms[0]).from_dict(r) for r in rows]
+    assert back == ms
+    rows[0]["value"] = None
+    m = type(ms[0]).from_dict(rows[0])
+    assert math.isnan(m.value) and m.display_value == "n/a"

@@ -141,3 +141,36 @@ def test_index_sort_keys_are_numbers(pages):
     html = render_index(rows, fails)
     keys = re.findall(r'data-sort="([^"]*)"', html)
     assert keys and all(k == "" or np.isfinite(float(k)) for k in keys)
+
+
+def test_index_accepts_metrics_read_back_from_json(pages):
+    import dataclasses
+
+    from epicorr.qcmetrics import Metric
+    from epicorr.report import IndexRow
+
+    rows = [dataclasses.asdict(m) for m in pages["good"].targets[0].metrics]
+    rows[0]["value"] = None  # how JSON stores a metric that could not be computed
+    metrics = [Metric.from_dict(r) for r in rows]
+    html = render_index([IndexRow("sub-01", "task-rest_bold", metrics, "sub-01.html")])
+    assert "n/a" in html
+
+
+def test_typical_page_size_stays_well_under_5mb(rng):
+    # A typical 3 T fMRI grid (96 x 96 x 60 voxels of 2.5 mm), every figure present.
+    shape = (96, 96, 60)
+    truth, brain = synth.head(rng, shape)
+    fld = synth.field(shape)
+    disp = -fld * synth.EES * shape[1]
+    t = synth.target(rng)
+    t.reference_before, t.reference_after = synth.distort(truth, disp), truth
+    t.field_hz, t.displacement_vox, t.brain_mask, t.edges = fld, disp, brain, truth
+    t.dropout_mask, t.retained_signal = brain & (fld > 60), np.clip(1 - np.abs(fld) / 250, 0, 1)
+    t.uncertainty = 2.0 + np.abs(np.gradient(fld, axis=1))
+    t.pair_before = (synth.distort(truth, disp), synth.distort(truth, -disp))
+    t.pair_after = (truth, truth + rng.normal(0, 5, shape))
+    t.voxel_size_mm, t.affine = (2.5, 2.5, 2.5), np.diag([2.5, 2.5, 2.5, 1.0])
+    s = synth.subject(rng)
+    s.targets = [t]
+    size = len(render_subject_page(s).encode("utf-8"))
+    assert size < 1_500_000, size  # the brief asks for well under 5 MB

@@ -29,6 +29,8 @@ __all__ = ["SliceView", "field_figure", "displacement_histogram", "comparison_im
 #: Dots per inch of every figure (keeps a page small; common practice for web QC).
 DPI = 100
 _ORIENTS = ("sagittal", "coronal", "axial")
+#: Order of the three slice orientations in every figure.
+ORIENTATIONS = _ORIENTS
 _FIELD_CMAP = "RdBu_r"
 _EDGE_COLOUR = "#ffd21f"
 _DROPOUT_COLOUR = "#19e3ff"

@@ -11,7 +11,6 @@ from __future__ import annotations
 import datetime as _dt
 import math
 import os
-import tempfile
 from functools import lru_cache
 from pathlib import Path
 from typing import Any, Sequence
@@ -53,21 +52,11 @@ def _env() -> Environment:
 
 def _atomic_write(path: str | os.PathLike, text: str) -> Path:
     """Write text to ``path`` through a temporary file in the same folder and ``os.replace``."""
+    from ..io import _atomic_write as atomic
+
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            fh.write(text)
-        os.chmod(tmp, 0o644)
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except FileNotFoundError:
-            pass
-        raise
-    return path
+    return atomic(path, lambda tmp: Path(tmp).write_text(text, encoding="utf-8"))
 
 
 def _severity(metrics) -> tuple[int, int, int]:
@@ -104,9 +93,20 @@ def _target_context(t: TargetReport, n: int) -> dict[str, Any]:
         figs["pair"] = fg.pair_figure(view, before=t.pair_before, after=t.pair_after,
                                       pe_axis=t.pe.axis, labels=t.pair_labels, corr=pair_corr)
     counts = {s: sum(m.status == s for m in t.metrics) for s in STATUSES}
+    compare = []
+    for (title, before, after, ratio), orient in zip(figs["compare"], fg.ORIENTATIONS):
+        compare.append((f"{title} · PE {_pe_arrow(view, t.pe.axis, orient)}", before, after, ratio))
+    figs["compare"] = compare
     return {"t": t, "n": n, "anchor": f"target-{n}", "status": t.status, "figs": figs,
             "counts": counts, "pair_corr": pair_corr,
             "edges_label": t.edges_label if t.edges is not None else "corrected EPI reference"}
+
+
+def _pe_arrow(view: fg.SliceView, pe_axis: int, orient: str) -> str:
+    """How the phase-encode axis lies in a displayed slice: ↔, ↕ or through-plane."""
+    c = view.canonical_axis(pe_axis)
+    horizontal, vertical = {"sagittal": (1, 2), "coronal": (0, 2), "axial": (0, 1)}[orient]
+    return "↔" if c == horizontal else "↕" if c == vertical else "through-plane"
 
 
 def render_subject_page(subject: SubjectReport) -> str:
@@ -135,7 +135,7 @@ def write_subject_page(path: str | os.PathLike, subject: SubjectReport) -> Path:
 def _cell(metric) -> dict[str, Any]:
     if metric is None:
         return {"text": "—", "sort": "", "status": None, "title": "not available"}
-    v = float(metric.value)
+    v = float("nan") if metric.value is None else float(metric.value)
     return {"text": metric.display_value, "sort": f"{v:.6g}" if math.isfinite(v) else "",
             "status": metric.status, "title": metric.explanation}
 
