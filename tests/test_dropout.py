@@ -118,7 +118,7 @@ def _epi_1d(g_hz_per_mm, *, polarity, n=64, dy=3.0, ees=EES, te=TE, over=8):
     Line ky = -n/2..n/2-1 is read at TE + polarity*ky*EES; returns
     (|k-space signal| per line, reconstructed complex image).
     """
-    y = (np.arange(n * over) + 0.5) / over - n / 2 - 0.5 / over * 0  # voxel units, centre 0
+    y = (np.arange(n * over) + 0.5) / over - 0.5 - n / 2  # sub-voxel positions; voxel m spans m +- 0.5
     rho = (np.abs(y) < n / 4).astype(float)
     f = g_hz_per_mm * y * dy
     ky = np.arange(n) - n // 2
