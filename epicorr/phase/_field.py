@@ -61,7 +61,7 @@ from typing import Any, Sequence
 import numpy as np
 import scipy.ndimage as ndi
 
-from ._unwrap import _PoissonDCT, _wlap
+from ._unwrap import _PoissonDCT, _dot, _wlap
 
 __all__ = ["phase_to_hz", "despike", "extrapolate_harmonic", "smooth_field", "field_sigma_hz",
            "FWHM_TO_SIGMA"]
@@ -158,23 +158,23 @@ def extrapolate_harmonic(field_hz: Any, known: Any, *, tol: float = 1e-4,
     b = -np.where(free, _wlap(base), 0.0)
     x = np.where(free, start, 0.0)
     r = b - A(x)
-    bnorm = float(np.linalg.norm(b)) or 1.0
+    bnorm = math.sqrt(_dot(b, b)) or 1.0
     z = M(r)
     p = z.copy()
-    rz = float(np.vdot(r, z))
-    it, res = 0, float(np.linalg.norm(r)) / bnorm
+    rz = _dot(r, z)
+    it, res = 0, math.sqrt(_dot(r, r)) / bnorm
     while it < max_iter and res > tol:
         ap = A(p)
-        pap = float(np.vdot(p, ap))
+        pap = _dot(p, ap)
         if pap <= 0:
             break
         alpha = rz / pap
         x += alpha * p
         r -= alpha * ap
         it += 1
-        res = float(np.linalg.norm(r)) / bnorm
+        res = math.sqrt(_dot(r, r)) / bnorm
         z = M(r)
-        rz_new = float(np.vdot(r, z))
+        rz_new = _dot(r, z)
         p = z + (rz_new / rz) * p
         rz = rz_new
     return np.where(k, f, x), {"iterations": it, "residual": res}

@@ -13,7 +13,9 @@ Method
    ``max(4 sigma, 5 % of the 99th percentile)``: a bias field that darkens
    part of the head by a factor of several still leaves it far above the
    noise, so it stays in the mask, where a single global Otsu cut would drop it.
-4. Morphology: an opening (6-connected, one voxel) cuts thin bridges to
+4. Foreground: both the smoothed and the voxel's own magnitude above the
+   threshold (the smoothing alone would bleed a bright edge outwards).
+5. Morphology: an opening (6-connected, one voxel) cuts thin bridges to
    ghosts and noise, the largest 6-connected component is kept, holes are
    filled (3-D, then slice by slice along each axis), and a closing smooths
    the edge.
@@ -148,7 +150,9 @@ def head_mask(magnitude: Any, *, key: str = "magnitude", file: Any = None) -> tu
     sigma0 = float(np.median(dark)) / 1.1774 if dark.size >= 100 else noise_sigma(m, np.zeros(m.shape, bool))
     p99 = float(np.percentile(smooth, 99))
     threshold = min(t_otsu, max(4.0 * sigma0, 0.05 * p99))
-    fg = smooth > threshold
+    # Both the smoothed and the voxel's own magnitude above the threshold: the
+    # smoothing alone would bleed a bright edge one voxel into the background.
+    fg = (smooth > threshold) & (m > threshold)
     opened = ndi.binary_opening(fg, structure=_SIX)
     if opened.any():
         fg = opened
