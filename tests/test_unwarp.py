@@ -6,7 +6,7 @@ import scipy.ndimage as ndi
 
 from epicorr.displacement import displacement_jacobian, field_to_displacement
 from epicorr.errors import EpicorrInputError
-from epicorr.unwarp import LineResampler, resample_along_axis, unwarp
+from epicorr.unwarp import LineResampler, bspline_coefficients, resample_along_axis, unwarp
 
 
 def _reference(volume, coords, axis, order):
@@ -48,6 +48,21 @@ def test_matches_scipy_inside_field_of_view_with_constant_mode(rng):
     ref = ndi.map_coordinates(vol, grid, order=3, mode="constant", cval=0.0)
     got = resample_along_axis(vol, coords, axis=1)
     np.testing.assert_allclose(got, ref, atol=2e-6 * np.ptp(vol))
+
+
+@pytest.mark.parametrize("n", [1, 2, 3, 5, 15, 16, 17, 40, 97])
+@pytest.mark.parametrize("layout", ["C", "F"])
+def test_prefilter_matches_scipy_spline_filter1d(rng, n, layout):
+    # Reference library: scipy.ndimage.spline_filter1d(order=3, mode="mirror") in
+    # float64; ours is float32: tolerance 1e-6 relative to the largest value.
+    for axis in range(3):
+        shape = [6, 7, 5]
+        shape[axis] = n
+        vol = np.asarray(rng.normal(size=shape).astype(np.float32), order=layout)
+        ref = ndi.spline_filter1d(vol.astype(np.float64), order=3, axis=axis, mode="mirror")
+        got = bspline_coefficients(vol, axis=axis)
+        assert got.dtype == np.float32
+        np.testing.assert_allclose(got, ref, rtol=0, atol=1e-6 * np.abs(vol).max())
 
 
 def test_edge_rule_half_voxel():
