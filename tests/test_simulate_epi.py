@@ -119,3 +119,38 @@ def test_noise_matches_stated_snr():
     # SNR definition: mean signal over the mask / per-channel noise sigma
     assert np.std(noise.real) == pytest.approx(1 / 20, rel=0.05)
     assert np.std(noise.imag) == pytest.approx(1 / 20, rel=0.05)
+
+
+def test_unwarping_with_true_field_restores_undistorted_head():
+    # End to end: k-space spin-echo EPI of the synthetic head, unwarped by the package's
+    # engine (Jezzard & Balaban 1995 pixel-shift model with the Jacobian) using the true
+    # field, compared with the undistorted object where the mapping is well conditioned
+    # (0.5 < Jacobian < 1.5: pile-ups cannot be undone, Jezzard & Balaban 1995).
+    import scipy.ndimage as ndi
+
+    from epicorr.displacement import displacement_jacobian, field_to_displacement
+    from epicorr.simulate import dipole_field_hz, shim, synthetic_head
+    from epicorr.unwarp import unwarp
+
+    head = synthetic_head(shape=(36, 44, 28), voxel_size_mm=5.0, seed=4)
+    field = shim(dipole_field_hz(head.chi_ppm, affine=head.affine), mask=head.brain_mask,
+                 affine=head.affine)
+    ees, n_pe = 5e-4, 44
+    epi = simulate_epi(head, field, pe="j-", effective_echo_spacing=ees, echo_time=0.06)
+    disp = field_to_displacement(field, pe="j-", voxels_per_hz=ees * n_pe)
+    assert np.abs(disp[head.brain_mask]).max() > 2.0          # real distortion to undo
+    fixed = unwarp(epi, disp, pe_axis=1)
+    jac = displacement_jacobian(disp, pe_axis=1)
+    tissue = ~np.isin(head.labels, (0, 6, 7, 8))
+    good = tissue & ndi.binary_erosion((jac > 0.5) & (jac < 1.5))
+    truth = head.epi_contrast[good]
+
+    def scores(img):
+        a = img[good]
+        return np.corrcoef(a, truth)[0, 1], np.sqrt(np.mean((a - truth) ** 2)) / truth.mean()
+
+    r_before, e_before = scores(epi)
+    r_after, e_after = scores(fixed)
+    # measured (seed 4, 8460 voxels): r 0.904 -> 0.968, relative RMSE 0.189 -> 0.109
+    assert r_after > 0.95 and r_after > r_before + 0.03
+    assert e_after < 0.15 and e_after < 0.7 * e_before
