@@ -159,16 +159,12 @@ def _otsu(values: np.ndarray) -> float:
 
 
 def _edge_levels(edges: np.ndarray) -> list[float]:
+    """One contour level: Otsu's threshold of the (smoothed) edge image."""
     v = np.asarray(edges, dtype=float)
     vals = v[np.isfinite(v)]
     if vals.size == 0 or np.ptp(vals) == 0:
         return []
-    t1 = _otsu(vals)
-    upper = vals[vals > t1]
-    levels = [t1]
-    if upper.size > 10 and np.ptp(upper) > 0:
-        levels.append(_otsu(upper))
-    return sorted(set(levels))
+    return [_otsu(vals)]
 
 
 def _new_fig(width: float, height: float) -> Figure:
@@ -292,7 +288,7 @@ def comparison_images(view: SliceView, *, before: np.ndarray, after: np.ndarray,
         The reference as acquired and corrected; one grey window for both
         (from ``after``), so brightness differences are real.
     edges : ndarray, shape (I, J, K) or None
-        Image whose iso-contours (Otsu levels) are drawn; the corrected
+        Image whose iso-contour (Otsu level, after light smoothing) is drawn; the corrected
         reference when None.
 
     Returns
@@ -302,7 +298,7 @@ def comparison_images(view: SliceView, *, before: np.ndarray, after: np.ndarray,
         coronal and axial.
     """
     edge_src = view.canonical(after if edges is None else edges).astype(float)
-    edge_src = ndimage.gaussian_filter(np.nan_to_num(edge_src), 0.7)
+    edge_src = ndimage.gaussian_filter(np.nan_to_num(edge_src), 1.0)
     levels = _edge_levels(edge_src)
     win = _window(view.canonical(after))
     canon = [view.canonical(before), view.canonical(after)]
