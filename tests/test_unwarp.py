@@ -180,3 +180,33 @@ def test_bad_input_rejected(rng):
         unwarp(data, disp, pe_axis=1, out=np.empty(data.shape, np.float64))
     with pytest.raises(EpicorrInputError, match="match"):
         LineResampler(np.zeros((6, 8, 5)), axis=1)(np.zeros((6, 8, 4)))
+
+
+def test_series_read_one_volume_at_a_time_from_disk(tmp_path, rng):
+    # Streaming: a nibabel array proxy is read volume by volume (never the whole
+    # series at once), and the on-disk dtype (int16 here) is what each read returns.
+    import nibabel as nib
+
+    from epicorr.io import load_image, save_image_atomic
+
+    data = rng.integers(0, 2000, size=(10, 12, 6, 7)).astype(np.int16)
+    path = save_image_atomic(nib.Nifti1Image(data, np.eye(4)), tmp_path / "bold.nii.gz")
+    proxy = load_image(path).dataobj
+    requests = []
+
+    class Recorder:
+        shape = proxy.shape
+
+        def __getitem__(self, key):
+            block = proxy[key]
+            requests.append(block.shape)
+            assert block.dtype == np.int16
+            return block
+
+    disp = np.tile(np.linspace(-1.5, 2.0, 12)[None, :, None], (10, 1, 6))
+    got = unwarp(Recorder(), disp, pe_axis=1)
+    assert requests == [(10, 12, 6)] * 7
+    np.testing.assert_array_equal(got, unwarp(data, disp, pe_axis=1))
+    # C-ordered input gives the same result as Fortran-ordered input.
+    np.testing.assert_array_equal(unwarp(np.ascontiguousarray(data), disp, pe_axis=1),
+                                  unwarp(np.asfortranarray(data), disp, pe_axis=1))
