@@ -203,28 +203,37 @@ def simulate_epi(obj, field_hz, *, pe, effective_echo_spacing, echo_time, affine
     nv = int(np.ceil(np.sqrt(n)))
     nu = int(np.ceil(n / nv))
     out = np.empty((ns, nr, n), dtype=complex)
-    yq = np.tile(y_fine / n, q)                                 # (J,) cycles per ky
     for k in range(ns):
-        # field at the sub-slices of slice k, fine along PE: (nr, Q, Np) -> (nr, J)
-        fz = np.einsum("qz,zrn->rqn", s_fld[k], f_t)
-        ff = np.einsum("mn,rqn->rqm", u_fld, fz).reshape(nr, q * n * p)
-        a = np.repeat(rho_fine[k][:, None, :], q, axis=1).reshape(nr, q * n * p) / (p * q)
-        cyc = yq[None, :] + slope * ff                                 # cycles per unit ky
-        z = _cis(cyc).astype(np.complex64)                             # (nr, J)
+        # samples with no object contribute nothing: keep the readout columns and the
+        # fine PE positions where the object is non-zero in this slice
+        rows = np.nonzero(np.any(rho_fine[k] != 0, axis=1))[0]
+        if rows.size == 0:
+            out[k] = 0
+            continue
+        cols = np.nonzero(np.any(rho_fine[k][rows] != 0, axis=0))[0]        # fine PE indices
+        nrk = rows.size
+        # field at the sub-slices of slice k, fine along PE: (nrk, Q, m) -> (nrk, J)
+        fz = np.einsum("qz,zrn->rqn", s_fld[k], f_t[:, rows])
+        ff = np.einsum("mn,rqn->rqm", u_fld[cols], fz).reshape(nrk, -1)
+        a = np.repeat(rho_fine[k][rows][:, None, cols], q, axis=1).reshape(nrk, -1) / (p * q)
+        cyc = np.tile(y_fine[cols] / n, q)[None, :] + slope * ff        # cycles per unit ky
+        jn = cyc.shape[1]
+        z = _cis(cyc).astype(np.complex64)                             # (nrk, J)
         start = a * _cis(t0 * ff) if t0 else a.astype(complex)
-        pv = np.empty((nr, nv, z.shape[1]), dtype=np.complex64)
+        pv = np.empty((nrk, nv, jn), dtype=np.complex64)
         pv[:, 0] = start * _cis(ky[0] * cyc)                           # b z**ky0
         for v in range(1, nv):
             np.multiply(pv[:, v - 1], z, out=pv[:, v])
         zv = _cis(nv * cyc).astype(np.complex64)                       # z**V
-        pu = np.empty((nr, nu, z.shape[1]), dtype=np.complex64)
+        pu = np.empty((nrk, nu, jn), dtype=np.complex64)
         pu[:, 0] = 1
         for u in range(1, nu):
             np.multiply(pu[:, u - 1], zv, out=pu[:, u])
         pu = np.swapaxes(pu, 1, 2)
-        sig = np.matmul(pv, pu)                                       # (nr, V, U): ky0 + V u + v
-        sig = np.swapaxes(sig, 1, 2).reshape(nr, nu * nv)[:, :n]
-        out[k] = (sig / h[None, :]) @ recon.T
+        sig = np.matmul(pv, pu)                                       # (nrk, V, U): ky0 + V u + v
+        sig = np.swapaxes(sig, 1, 2).reshape(nrk, nu * nv)[:, :n]
+        out[k] = 0
+        out[k, rows] = (sig / h[None, :]) @ recon.T
     img = np.transpose(out, np.argsort(order))
     if snr is not None:
         if mask is None:
