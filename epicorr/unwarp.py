@@ -51,7 +51,10 @@ with 2 or 4 weights per output voxel, the Jacobian folded into the weights),
 then applies it to each volume: prefilter (float32 result) and one sparse
 matrix-vector product.  :func:`unwarp` streams a 4-D series volume by volume
 (never converting the whole series to float64) and uses a few threads; both
-steps release the GIL.
+steps release the GIL.  Series are fastest in the layout nibabel returns
+(Fortran order, each volume contiguous); a C-ordered 4-D array works but each
+volume is then gathered with a large stride.  Measured by
+``benchmarks/bench_unwarp.py``.
 
 References
 ----------
