@@ -58,22 +58,25 @@ def forward_matrix(d: np.ndarray) -> sparse.csc_matrix:
     length = np.maximum(hi - lo, 1e-6)
     k_taps = int(np.ceil(float(length.max()))) + 1
     first = np.floor(lo + 0.5)
-    col = np.arange(m)[None, :]
-    rows = np.empty((n, m, k_taps), dtype=np.int64)
+    col = np.arange(m, dtype=np.int64)[None, :]
+    nn = n * m
+    itype = np.int32 if nn * k_taps < 2 ** 31 - 1 else np.int64
+    rows = np.empty((n, m, k_taps), dtype=itype)
     vals = np.empty((n, m, k_taps))
     for j in range(k_taps):
         x = first + j
         ov = np.minimum(hi, x + 0.5) - np.maximum(lo, x - 0.5)
         ok = (ov > 0) & (x >= 0) & (x <= n - 1)
         vals[..., j] = np.where(ok, ov / length, 0.0)
-        xi = np.clip(x, 0, n - 1).astype(np.int64)
-        rows[..., j] = xi * m + col
-    nn = n * m
-    indptr = np.arange(0, k_taps * nn + 1, k_taps, dtype=np.int64)
-    return sparse.csc_matrix((vals.reshape(-1), rows.reshape(-1), indptr), shape=(nn, nn))
+        rows[..., j] = np.clip(x, 0, n - 1).astype(itype) * m + col
+        del x, ov, ok
+    indptr = np.arange(0, k_taps * nn + 1, k_taps, dtype=itype)
+    del edge, lo, hi, length, first
+    mat = sparse.csc_matrix((vals.reshape(-1), rows.reshape(-1), indptr), shape=(nn, nn), copy=False)
+    return mat
 
 
-def restore(images, displacements, *, eps=0.02, maxiter=60, rtol=1e-4):
+def restore(images, displacements, *, eps=0.02, maxiter=30, rtol=1e-3):
     """Least-squares restoration of the undistorted image from several polarities.
 
     Parameters
@@ -100,7 +103,10 @@ def restore(images, displacements, *, eps=0.02, maxiter=60, rtol=1e-4):
     diag = np.zeros_like(rhs)
     for A, img in zip(mats, images):
         rhs += A.T @ img.ravel()
-        diag += np.asarray(A.multiply(A).sum(axis=0)).ravel()
+        sq = A.copy()
+        sq.data **= 2
+        diag += np.asarray(sq.sum(axis=0)).ravel()
+        del sq
     m = rhs.size // n
     eps_abs = eps * len(images)
 

@@ -24,6 +24,8 @@ DEFAULT_BARRIER = 0.1
 _MIN_HALVE = 16
 #: Below this largest displacement (mm) a rigid correction is not applied.
 _MOTION_NEGLIGIBLE_MM = 0.05
+#: Rigid alignment runs on the half-resolution copies when they have at least this many voxels.
+_REG_MIN_VOXELS = 50_000
 
 
 @dataclass
@@ -109,7 +111,7 @@ def _pyramid(vol, plans):
 def estimate_field_from_pair(images, *, pe_directions, voxels_per_hz, affine, mask=None,
                              files=None, regularization=DEFAULT_REGULARIZATION,
                              barrier=DEFAULT_BARRIER, levels=5, iterations=(5, 15),
-                             rigid=True, motion_iterations=2, combine=True) -> PairEstimate:
+                             rigid=True, motion_iterations=3, combine=True) -> PairEstimate:
     """Estimate the B0 field from EPI images with reversed phase-encode polarity.
 
     Solves the reversed-gradient problem of Chang & Fitzpatrick (1992):
@@ -236,18 +238,27 @@ def estimate_field_from_pair(images, *, pe_directions, voxels_per_hz, affine, ma
     coarse_lo = 1 if n_lev > 1 else 0
     u = run_levels(None, coarse_lo, n_lev)
     if rigid:
+        # Registered on the level-1 copies (block means: voxel 0 sits half a fine voxel
+        # in) when they are big enough, else at full resolution.
+        reg_lev = coarse_lo if pyramids[0][coarse_lo].size >= _REG_MIN_VOXELS else 0
+        sp1 = np.empty(3)
+        org1 = np.empty(3)
+        order = [ax] + [a for a in range(3) if a != ax]
+        for pos, a in enumerate(order):
+            sp1[a] = inp.spacing[a] * cum[reg_lev][pos]
+            org1[a] = 0.5 * (cum[reg_lev][pos] - 1) * inp.spacing[a]
         for _ in range(int(motion_iterations)):
-            u0 = to_level0(u, coarse_lo)
-            unw = [pe_back(_model.unwarp(pe_first(v), c * u0)) for v, c in zip(vols, coefs)]
+            u_reg = u if reg_lev == coarse_lo else to_level0(u, coarse_lo)
+            unw = [pe_back(_model.unwarp(pyr[reg_lev], c * u_reg)) for pyr, c in zip(pyramids, coefs)]
             fixed = np.mean([w for w, p in zip(unw, inp.pe) if p.polarity > 0], axis=0)
             moved = {}
             for k, p in enumerate(inp.pe):
                 if p.polarity > 0:
                     continue
-                tx = _rigid.rigid_register(fixed, unw[k], spacing=inp.spacing,
+                tx = _rigid.rigid_register(fixed, unw[k], spacing=sp1, origin=org1,
                                            frozen_translation_axis=ax,
-                                           sampling=0.25 if fixed.size < 2e6 else 0.1)
-                mag = _rigid.transform_magnitude(tx, fixed.shape, inp.spacing)
+                                           sampling=0.25 if fixed.size < 5e5 else 0.1)
+                mag = _rigid.transform_magnitude(tx, vols[k].shape, inp.spacing)
                 moved[k] = mag
                 if mag > _MOTION_NEGLIGIBLE_MM:
                     vols[k] = _rigid.rigid_resample(vols[k], tx, spacing=inp.spacing)

@@ -24,14 +24,15 @@ import SimpleITK as sitk
 __all__ = ["rigid_register", "rigid_resample", "transform_magnitude"]
 
 
-def _to_sitk(arr, spacing):
+def _to_sitk(arr, spacing, origin=(0.0, 0.0, 0.0)):
     img = sitk.GetImageFromArray(np.ascontiguousarray(np.asarray(arr, dtype=np.float32).transpose(2, 1, 0)))
     img.SetSpacing(tuple(float(s) for s in spacing))
+    img.SetOrigin(tuple(float(o) for o in origin))
     return img
 
 
 def rigid_register(fixed, moving, *, spacing, frozen_translation_axis=None, iterations=60,
-                   sampling=0.25, seed=20261201):
+                   sampling=0.25, seed=20261201, origin=(0.0, 0.0, 0.0)):
     """Rigid (Euler 3-D) transform mapping ``fixed`` points into ``moving``.
 
     Parameters
@@ -39,6 +40,10 @@ def rigid_register(fixed, moving, *, spacing, frozen_translation_axis=None, iter
     fixed, moving : ndarray, shape (i, j, k)
     spacing : sequence of 3 float
         Voxel sizes, mm.
+    origin : sequence of 3 float
+        Position (mm) of voxel 0 in the frame shared with the full-resolution
+        images (non-zero for a block-averaged copy), so the transform found on
+        a coarse copy applies to the full grid.
     frozen_translation_axis : int or None
         Array axis whose translation is held at zero (used for the phase-encode
         axis, where a translation between polarities cannot be told apart from
@@ -48,8 +53,8 @@ def rigid_register(fixed, moving, *, spacing, frozen_translation_axis=None, iter
     -------
     sitk.Euler3DTransform
     """
-    f = _to_sitk(fixed, spacing)
-    m = _to_sitk(moving, spacing)
+    f = _to_sitk(fixed, spacing, origin)
+    m = _to_sitk(moving, spacing, origin)
     tx = sitk.CenteredTransformInitializer(f, m, sitk.Euler3DTransform(),
                                            sitk.CenteredTransformInitializerFilter.GEOMETRY)
     reg = sitk.ImageRegistrationMethod()

@@ -1,0 +1,234 @@
+"""Benchmark: field from a reversed phase-encode pair, against a SimpleITK peer baseline.
+
+Runs side by side in one process tree:
+
+* a 96x96x60 pair (target: under 20 s on 2 cores);
+* a 192x192x120 pair (4.4 M voxels; target: under 120 s and peak memory under
+  2 GiB), in a subprocess whose peak resident set size is read with
+  ``resource.getrusage`` (it includes making the data, so it is an upper bound);
+* the peer baseline: a general-purpose deformable registration of the same
+  96x96x60 pair with SimpleITK (B-spline transform whose coefficients move
+  only along PE: optimiser weights are zero on the other two components;
+  mean squares; three-level pyramid), field taken as ``-t / (2 v)`` at the
+  undistorted position (midway relation of the two polarities);
+* accuracy on the package's simulator (k-space EPI of the synthetic head
+  with a Fourier dipole field), noiseless (the simulator's default) and at
+  SNR 30.
+
+Data: the analytic phantom of ``tests/pair_phantom.py`` (Chang & Fitzpatrick
+intensity law by exact box integration) for the timing pairs; the simulator
+for the accuracy rows.  Results are printed and written to
+``benchmarks/results/bench_pair.json``.
+
+Reference point (published): Macdonald & Ruthotto 2018 solved a
+5-million-unknown problem in under 50 s on a laptop.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import resource
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+
+HERE = Path(__file__).resolve().parent
+REPO = HERE.parent
+sys.path.insert(0, str(REPO))
+sys.path.insert(0, str(REPO / "tests"))
+
+ECHO_SPACING = 0.52e-3  # s (common practice for 3 T EPI references)
+
+
+def _phantom(shape, seed=0):
+    from pair_phantom import pair
+
+    vph = ECHO_SPACING * shape[1]
+    p, m, f, obj, mask = pair(shape, pe_axis=1, voxels_per_hz=vph, snr=40.0, seed=seed)
+    return p, m, f, mask, vph
+
+
+def _affine(voxel_mm):
+    return np.diag([voxel_mm, voxel_mm, voxel_mm, 1.0])
+
+
+def _rmse(a, b, mask):
+    return float(np.sqrt(np.mean((a - b)[mask] ** 2)))
+
+
+def _run_epicorr(p, m, mask, vph, voxel_mm):
+    from epicorr.pair import estimate_field_from_pair
+
+    t0 = time.perf_counter()
+    c0 = time.process_time()
+    est = estimate_field_from_pair([p, m], pe_directions=["j", "j-"], voxels_per_hz=vph,
+                                   affine=_affine(voxel_mm), mask=mask)
+    return est, time.perf_counter() - t0, time.process_time() - c0
+
+
+def worker(size: str) -> None:
+    """Subprocess entry: one pair of the given size; prints a JSON line."""
+    shape = tuple(int(s) for s in size.split("x"))
+    t0 = time.perf_counter()
+    p, m, f, mask, vph = _phantom(shape, seed=1)
+    t_data = time.perf_counter() - t0
+    est, wall, cpu = _run_epicorr(p, m, mask, vph, 1.25)
+    usage = resource.getrusage(resource.RUSAGE_SELF)
+    print(json.dumps(dict(shape=shape, voxels=int(np.prod(shape)), data_seconds=t_data,
+                          seconds=wall, cpu_seconds=cpu, peak_rss_mib=usage.ru_maxrss / 1024.0,
+                          rmse_hz=_rmse(est.field_hz, f, mask),
+                          field_rms_hz=float(np.sqrt(np.mean(f[mask] ** 2))),
+                          agreement_before=est.info["agreement_before"],
+                          agreement_after=est.info["agreement_after"],
+                          gauss_newton_iterations=est.info["iterations"],
+                          timings=est.info["timings"])))
+
+
+def baseline_sitk(p, m, vph, voxel_mm, *, mesh=(8, 8, 6), iterations=60):
+    """SimpleITK B-spline registration of the minus image onto the plus one, PE only."""
+    import SimpleITK as sitk
+
+    def img(a):
+        im = sitk.GetImageFromArray(np.ascontiguousarray(a.transpose(2, 1, 0), dtype=np.float32))
+        im.SetSpacing((voxel_mm,) * 3)
+        return im
+
+    fixed, moving = img(p), img(m)
+    tx = sitk.BSplineTransformInitializer(fixed, list(mesh), order=3)
+    n_par = tx.GetNumberOfParameters()
+    weights = np.zeros(n_par)
+    weights[n_par // 3: 2 * n_par // 3] = 1.0  # only the y (= array axis j = PE) coefficients
+    reg = sitk.ImageRegistrationMethod()
+    reg.SetMetricAsMeanSquares()
+    reg.SetInterpolator(sitk.sitkLinear)
+    reg.SetMetricSamplingStrategy(reg.RANDOM)
+    reg.SetMetricSamplingPercentage(0.2, 1)
+    reg.SetOptimizerAsRegularStepGradientDescent(learningRate=2.0, minStep=0.01,
+                                                 numberOfIterations=iterations,
+                                                 relaxationFactor=0.7,
+                                                 gradientMagnitudeTolerance=1e-8)
+    reg.SetOptimizerWeights(weights.tolist())
+    reg.SetShrinkFactorsPerLevel([4, 2, 1])
+    reg.SetSmoothingSigmasPerLevel([2.0, 1.0, 0.0])
+    reg.SetInitialTransform(tx, inPlace=True)
+    t0 = time.perf_counter()
+    c0 = time.process_time()
+    reg.Execute(fixed, moving)
+    disp = sitk.TransformToDisplacementField(tx, sitk.sitkVectorFloat64, fixed.GetSize(),
+                                             fixed.GetOrigin(), fixed.GetSpacing(),
+                                             fixed.GetDirection())
+    t_vox = sitk.GetArrayFromImage(disp)[..., 1].transpose(2, 1, 0) / voxel_mm  # along j, voxels
+    # I+(x) ~ I-(x + t(x)); x = y + d(y) in the plus image, x + t = y - d: t(y + d) = -2 d(y).
+    # Fixed-point iteration for the field in undistorted space.
+    from scipy import ndimage
+    d = -0.5 * t_vox
+    grid = np.indices(p.shape).astype(float)
+    for _ in range(3):
+        coords = grid.copy()
+        coords[1] += d
+        d = -0.5 * ndimage.map_coordinates(t_vox, coords, order=1, mode="nearest")
+    return d / vph, time.perf_counter() - t0, time.process_time() - c0
+
+
+def simulator_accuracy(shape=(64, 64, 48), voxel_mm=3.0, ees=2.5e-4, snr=None):
+    """Accuracy on the package simulator (spin-echo EPI, j and j-)."""
+    from epicorr.pair import estimate_field_from_pair
+    from epicorr.simulate import dipole_field_hz, shim, simulate_epi, synthetic_head
+
+    head = synthetic_head(shape=shape, voxel_size_mm=voxel_mm, seed=0)
+    field = shim(dipole_field_hz(head.chi_ppm, affine=head.affine), mask=head.brain_mask,
+                 affine=head.affine)
+    ims = [simulate_epi(head, field, pe=pe, effective_echo_spacing=ees, echo_time=0.03, snr=snr,
+                        seed=k) for k, pe in enumerate(("j", "j-"))]
+    vph = ees * shape[1]
+    mask = head.brain_mask
+    t0 = time.perf_counter()
+    est = estimate_field_from_pair(ims, pe_directions=["j", "j-"], voxels_per_hz=vph,
+                                   affine=head.affine, mask=mask)
+    wall = time.perf_counter() - t0
+    err = est.field_hz - field
+    return dict(shape=shape, voxel_mm=voxel_mm, effective_echo_spacing=ees, snr=snr,
+                seconds=wall, rmse_hz=float(np.sqrt(np.mean(err[mask] ** 2))),
+                median_abs_error_hz=float(np.median(np.abs(err[mask]))),
+                mean_error_hz=float(err[mask].mean()),
+                field_rms_hz=float(np.sqrt(np.mean(field[mask] ** 2))),
+                max_displacement_vox=float(np.abs(field[mask]).max() * vph),
+                agreement_before=est.info["agreement_before"],
+                agreement_after=est.info["agreement_after"])
+
+
+def main(argv=None) -> dict:
+    argv = sys.argv[1:] if argv is None else argv
+    if argv and argv[0] == "--worker":
+        worker(argv[1])
+        return {}
+    quick = "--quick" in argv
+    results: dict = {"cpus": len(os.sched_getaffinity(0)),
+                     "load_average_at_start": os.getloadavg()}
+
+    # 1. 96x96x60: epicorr and the SimpleITK baseline on the same pair.
+    shape = (96, 96, 60)
+    voxel = 2.5
+    p, m, f, mask, vph = _phantom(shape)
+    est, wall, cpu = _run_epicorr(p, m, mask, vph, voxel)
+    ours = dict(seconds=wall, cpu_seconds=cpu, rmse_hz=_rmse(est.field_hz, f, mask),
+                input_rmse_hz=float(np.sqrt(np.mean(f[mask] ** 2))),
+                agreement_before=est.info["agreement_before"],
+                agreement_after=est.info["agreement_after"],
+                gauss_newton_iterations=est.info["iterations"], timings=est.info["timings"],
+                regularization=est.info["regularization"])
+    base_field, b_wall, b_cpu = baseline_sitk(p, m, vph, voxel)
+    base = dict(seconds=b_wall, cpu_seconds=b_cpu, rmse_hz=_rmse(base_field, f, mask))
+    results["pair_96x96x60"] = dict(epicorr=ours, sitk_bspline_pe=base,
+                                    speed_ratio=b_wall / wall,
+                                    cpu_ratio=b_cpu / cpu,
+                                    error_ratio=ours["rmse_hz"] / base["rmse_hz"],
+                                    target_seconds=20.0)
+
+    # 2. 192x192x120 in a subprocess (peak memory of a fresh process).
+    if not quick:
+        out = subprocess.run([sys.executable, __file__, "--worker", "192x192x120"],
+                             capture_output=True, text=True, check=True)
+        big = json.loads(out.stdout.strip().splitlines()[-1])
+        big.update(target_seconds=120.0, target_peak_rss_mib=2048.0,
+                   unknowns_per_second=big["voxels"] / big["seconds"])
+        results["pair_192x192x120"] = big
+
+    # 3. Accuracy on the simulator.
+    results["simulator"] = [simulator_accuracy(snr=None)]
+    if not quick:
+        results["simulator"].append(simulator_accuracy(snr=30.0))
+
+    r = results["pair_96x96x60"]
+    print(f"96x96x60 pair:     epicorr {r['epicorr']['seconds']:.1f} s wall "
+          f"({r['epicorr']['cpu_seconds']:.1f} s CPU), RMSE {r['epicorr']['rmse_hz']:.2f} Hz "
+          f"(field RMS {r['epicorr']['input_rmse_hz']:.1f} Hz), agreement "
+          f"{r['epicorr']['agreement_before']:.3f} -> {r['epicorr']['agreement_after']:.3f}")
+    print(f"  SimpleITK B-spline (PE only): {r['sitk_bspline_pe']['seconds']:.1f} s wall, "
+          f"RMSE {r['sitk_bspline_pe']['rmse_hz']:.2f} Hz")
+    print(f"  ratios: baseline/epicorr time {r['speed_ratio']:.2f}x wall, {r['cpu_ratio']:.2f}x CPU; "
+          f"epicorr/baseline error {r['error_ratio']:.2f}")
+    if "pair_192x192x120" in results:
+        b = results["pair_192x192x120"]
+        print(f"192x192x120 pair:  {b['seconds']:.1f} s wall ({b['cpu_seconds']:.1f} s CPU), peak RSS "
+              f"{b['peak_rss_mib']:.0f} MiB, RMSE {b['rmse_hz']:.2f} Hz, "
+              f"{b['unknowns_per_second'] / 1e3:.0f} k unknowns/s "
+              f"(published reference: 5 M unknowns in < 50 s)")
+    for s in results["simulator"]:
+        print(f"simulator {s['shape']} SNR {s['snr']}: RMSE {s['rmse_hz']:.2f} Hz (median |err| "
+              f"{s['median_abs_error_hz']:.2f}, field RMS {s['field_rms_hz']:.1f} Hz, max displacement "
+              f"{s['max_displacement_vox']:.1f} vox), agreement {s['agreement_before']:.3f} -> "
+              f"{s['agreement_after']:.3f}")
+    print(f"load average at start: {results['load_average_at_start']}")
+    outdir = HERE / "results"
+    outdir.mkdir(exist_ok=True)
+    (outdir / "bench_pair.json").write_text(json.dumps(results, indent=2, default=float))
+    return results
+
+
+if __name__ == "__main__":
+    main()
