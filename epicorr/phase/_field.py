@@ -11,12 +11,14 @@ off-resonance frequency, ``phi(TE) = phi0 + 2 pi f TE``, so two echoes give
 
 Despiking
 ---------
-A voxel whose field differs from the median of its 3x3x3 neighbourhood by
-more than ``max(6 s, 0.15 / dTE)`` (``s`` = 1.4826 x the median absolute
+A voxel whose field differs from the median of its measured 3x3x3
+neighbours by more than ``max(6 s, 0.15 / dTE, 5 sigma_f)`` (``s`` = 1.4826 x the median absolute
 residual inside the mask, a robust standard deviation; ``0.15 / dTE`` Hz is
 about one radian of phase; a direct field map, without echo times, uses a
-floor of 30 Hz instead) is an isolated outlier (e.g. a single-voxel cycle
-error or a noise spike) and takes the median's value (common practice).
+floor of 30 Hz instead; ``sigma_f`` is the voxel's own uncertainty) is an
+isolated outlier (e.g. a single-voxel cycle error or a noise spike) and takes
+the median's value (common practice).  Unmeasured neighbours never enter the
+median, so steep but genuine fields at the mask edge are kept.
 
 Extrapolation outside the mask
 ------------------------------
@@ -76,21 +78,22 @@ def phase_to_hz(dphi: Any, *, delta_te: float) -> np.ndarray:
     return np.asarray(dphi, dtype=np.float64) / (2.0 * math.pi * float(delta_te))
 
 
-def despike(field_hz: Any, mask: Any, *, delta_te: float | None = None,
-            floor_hz: float = 0.0) -> tuple[np.ndarray, int]:
-    """Replace isolated outliers inside ``mask`` by their 3x3x3 median.
+def despike(field_hz: Any, mask: Any, *, delta_te: float | None = None, floor_hz: float = 0.0,
+            sigma_hz: Any = None) -> tuple[np.ndarray, int]:
+    """Replace isolated outliers inside ``mask`` by the median of their measured neighbours.
 
     Parameters
     ----------
     field_hz : array_like, shape (X, Y, Z)
         Field, Hz.
     mask : array_like of bool, shape (X, Y, Z)
-        Measured voxels; unmeasured neighbours enter the median with a local
-        (Gaussian-weighted, sigma 2 voxels) average of the measured field.
+        Measured voxels; only they enter the 3x3x3 median.
     delta_te : float, optional
         Echo-time difference, s; sets the floor ``0.15 / dTE`` Hz.
     floor_hz : float
         A fixed floor of the limit, Hz (for field maps without echo times).
+    sigma_hz : array_like, shape (X, Y, Z), optional
+        Per-voxel standard deviation; the limit is at least ``5 sigma``.
 
     Returns
     -------
@@ -101,19 +104,24 @@ def despike(field_hz: Any, mask: Any, *, delta_te: float | None = None,
     m = np.asarray(mask, dtype=bool)
     if m.sum() < 27:
         return f, 0
-    # Unmeasured neighbours enter the median with a local average of the
-    # measured field (normalised Gaussian convolution, sigma 2 voxels).
-    w = ndi.gaussian_filter(m.astype(np.float64), 2.0, mode="nearest")
-    local = ndi.gaussian_filter(np.where(m, f, 0.0), 2.0, mode="nearest") / np.maximum(w, 1e-12)
-    local = np.where(w > 1e-6, local, float(np.median(f[m])))
-    med = ndi.median_filter(np.where(m, f, local), size=3, mode="nearest")
-    resid = (f - med)[m]
-    s = 1.4826 * float(np.median(np.abs(resid - np.median(resid))))
+    # Median over measured neighbours only, bracketed: unmeasured voxels are
+    # entered once as +inf and once as -inf; the masked median lies between.
+    hi = ndi.median_filter(np.where(m, f, np.inf), size=3, mode="nearest")
+    lo = ndi.median_filter(np.where(m, f, -np.inf), size=3, mode="nearest")
+    both = m & np.isfinite(hi) & np.isfinite(lo)
+    with np.errstate(invalid="ignore"):
+        mid = np.where(both, 0.5 * (hi + lo), f)
+    resid = (f - mid)[both]
+    s = 1.4826 * float(np.median(np.abs(resid - np.median(resid)))) if resid.size else 0.0
     limit = max(6.0 * s, float(floor_hz))
     if delta_te:
         limit = max(limit, 0.15 / abs(float(delta_te)))
-    spikes = m & (np.abs(f - med) > limit)
-    f[spikes] = med[spikes]
+    limit = np.full(f.shape, limit)
+    if sigma_hz is not None:
+        limit = np.maximum(limit, 5.0 * np.asarray(sigma_hz, dtype=np.float64))
+    with np.errstate(invalid="ignore"):
+        spikes = both & ((f - hi > limit) | (lo - f > limit))
+    f[spikes] = mid[spikes]
     return f, int(spikes.sum())
 
 

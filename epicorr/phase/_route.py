@@ -137,16 +137,16 @@ def _finish(dphi: np.ndarray, m1: np.ndarray, m2: np.ndarray | None, *, delta_te
     info["mask"] = minfo
     unwrapped, uinfo = unwrap_phase_3d(dphi, quality=quality, mask=reliable)
     info["unwrap"] = uinfo
-    f = phase_to_hz(unwrapped, delta_te=delta_te)
-    f, n_spikes = despike(f, reliable, delta_te=delta_te)
-    info["spikes_replaced"] = n_spikes
-    f, einfo = extrapolate_harmonic(f, reliable)
-    info["extrapolation"] = einfo
-    f = _maybe_smooth(f, smoothing_fwhm_mm, zooms, info)
     noise = minfo["noise_sigma"] or 1e-12
     snr1 = np.abs(m1) / noise
     snr2 = snr1 if m2 is None else np.abs(m2) / noise
     sigma = field_sigma_hz(snr1, snr2, delta_te=delta_te, measured=reliable)
+    f = phase_to_hz(unwrapped, delta_te=delta_te)
+    f, n_spikes = despike(f, reliable, delta_te=delta_te, sigma_hz=sigma)
+    info["spikes_replaced"] = n_spikes
+    f, einfo = extrapolate_harmonic(f, reliable)
+    info["extrapolation"] = einfo
+    f = _maybe_smooth(f, smoothing_fwhm_mm, zooms, info)
     info["sigma_method"] = ("sqrt(1/SNR1^2 + 1/SNR2^2) / (2 pi |dTE|)" if m2 is not None
                             else "sqrt(2)/SNR1 / (2 pi |dTE|) (second magnitude absent: equal SNR assumed)")
     info["head_voxels"] = int(head.sum())
