@@ -88,7 +88,7 @@ def worker(size: str) -> None:
                           timings=est.info["timings"])))
 
 
-def baseline_sitk(p, m, vph, voxel_mm, *, mesh=(8, 8, 6), iterations=60):
+def baseline_sitk(p, m, vph, voxel_mm, *, mesh=(8, 8, 6), iterations=30):
     """SimpleITK B-spline registration of the minus image onto the plus one, PE only."""
     import SimpleITK as sitk
 
