@@ -29,7 +29,8 @@ import numpy as np
 
 from .errors import EpicorrInputError
 
-__all__ = ["load_image", "load_sidecar", "save_image_atomic", "save_json_atomic", "image_like"]
+__all__ = ["load_image", "load_sidecar", "save_image_atomic", "save_json_atomic", "save_text_atomic",
+           "copy_file_atomic", "image_like"]
 
 _NIFTI_SUFFIXES = (".nii", ".nii.gz", ".hdr", ".img", ".img.gz", ".hdr.gz")
 
@@ -206,10 +207,20 @@ def _default_mode() -> int:
     return 0o666 & ~mask
 
 
+def _write_error(path: Path, err: OSError) -> EpicorrInputError:
+    """An output that cannot be written (unwritable folder, full disk) is bad input: exit 2."""
+    reason = err.strerror or str(err) or type(err).__name__
+    return EpicorrInputError(f"cannot write this output ({reason})", file=path,
+                             hint="check that the output folder exists, is writable and has free space")
+
+
 def _atomic_write(path: Any, write) -> Path:
     path = Path(path)
     folder = path.parent if str(path.parent) else Path(".")
-    fd, tmp = tempfile.mkstemp(dir=folder, prefix=f".{path.name}.", suffix=".part" + _suffix(path))
+    try:
+        fd, tmp = tempfile.mkstemp(dir=folder, prefix=f".{path.name}.", suffix=".part" + _suffix(path))
+    except OSError as err:
+        raise _write_error(path, err) from err
     os.close(fd)
     tmp_path = Path(tmp)
     try:
@@ -218,11 +229,13 @@ def _atomic_write(path: Any, write) -> Path:
             os.fsync(fh.fileno())
         os.chmod(tmp_path, _default_mode())  # mkstemp makes 0600 files
         os.replace(tmp_path, path)
-    except BaseException:
+    except BaseException as err:
         try:
             tmp_path.unlink()
         except FileNotFoundError:
             pass
+        if isinstance(err, OSError):
+            raise _write_error(path, err) from err
         raise
     try:  # make the rename itself durable
         dir_fd = os.open(folder, os.O_RDONLY)
@@ -263,6 +276,30 @@ def save_json_atomic(obj: Any, path: Any) -> Path:
     """
     text = json.dumps(obj, indent=2, allow_nan=False) + "\n"  # fails before writing anything
     return _atomic_write(path, lambda tmp: tmp.write_text(text, encoding="utf-8"))
+
+
+def save_text_atomic(text: str, path: Any) -> Path:
+    """Write UTF-8 text (an HTML page, a TSV) atomically.
+
+    Returns
+    -------
+    Path
+    """
+    return _atomic_write(path, lambda tmp: tmp.write_text(text, encoding="utf-8"))
+
+
+def copy_file_atomic(src: Any, dst: Any) -> Path:
+    """Copy ``src`` to ``dst`` atomically (temporary file beside ``dst``, then rename).
+
+    Returns
+    -------
+    Path
+        ``dst``.  A failed copy leaves nothing under ``dst`` and raises
+        :class:`~epicorr.errors.EpicorrInputError` naming it.
+    """
+    import shutil
+
+    return _atomic_write(dst, lambda tmp: shutil.copyfile(src, tmp))
 
 
 def image_like(data: np.ndarray, reference_img: nib.Nifti1Image, *, dtype: Any = np.float32) -> nib.Nifti1Image:

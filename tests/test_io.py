@@ -178,7 +178,8 @@ def test_atomic_write_leaves_nothing_on_failure(tmp_path, monkeypatch):
         raise OSError("disk full")
 
     monkeypatch.setattr(eio.nib, "save", boom)
-    with pytest.raises(OSError, match="disk full"):
+    # An OS-level write failure is reported as bad output (exit 2 at the CLI), naming the file.
+    with pytest.raises(EpicorrInputError, match="out.nii.gz.*disk full"):
         save_image_atomic(img, target)
     assert list(tmp_path.iterdir()) == []
     monkeypatch.undo()
@@ -186,7 +187,7 @@ def test_atomic_write_leaves_nothing_on_failure(tmp_path, monkeypatch):
     save_image_atomic(img, target)
     before = target.read_bytes()
     monkeypatch.setattr(eio.nib, "save", boom)
-    with pytest.raises(OSError):
+    with pytest.raises(EpicorrInputError):
         save_image_atomic(img, target)
     assert target.read_bytes() == before
     assert sorted(p.name for p in tmp_path.iterdir()) == ["out.nii.gz"]
