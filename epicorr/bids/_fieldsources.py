@@ -172,8 +172,13 @@ def _adopt_unlabelled(groups: dict[tuple, list[BidsFile]]) -> None:
             family = _FAMILY[f.suffix]
             ents = {k: v for k, v in f.entities.items() if not (family == "epi" and k == "dir")}
             stems.add(build_name(ents, "fmap"))
+        if any(f.suffix == "epi" for f in groups[key]):
+            continue  # epi images carry their own metadata; nothing to adopt
         for other in [k for k in groups if k[0] == "stem" and k[1] in stems]:
-            groups[key].extend(groups.pop(other))
+            # Only unlabelled magnitudes are adopted: an unlabelled phase or field
+            # image is a field map of its own, not part of this one.
+            if all(f.suffix.startswith("magnitude") for f in groups[other]):
+                groups[key].extend(groups.pop(other))
 
 
 def _check_keys(dataset: BidsDataset, f: BidsFile) -> None:
