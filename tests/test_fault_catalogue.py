@@ -312,7 +312,6 @@ def test_30_output_folder_missing(case, capsys):
     _check(argv, src, out, capsys, names=("--out",))
 
 
-@pytest.mark.xfail(strict=True, reason="PermissionError from the temporary output file escapes as a traceback, not an EpicorrInputError (epicorr.bids._export.atomic_copy, used by the file-level commands, bypasses epicorr.io)")
 def test_31_output_folder_unwritable(case, capsys, monkeypatch):
     """An output folder refusing writes (simulated: this test runs as root, which ignores modes)."""
     src, out = case
@@ -329,7 +328,6 @@ def test_31_output_folder_unwritable(case, capsys, monkeypatch):
     _check(_unwarp(src, out), src, out, capsys, names=(str(out), "corrected.nii.gz"))
 
 
-@pytest.mark.xfail(strict=True, reason="ENOSPC while writing an output escapes as an OSError traceback, not a one-line exit-2 message: the file-level commands copy outputs with epicorr.bids._export.atomic_copy, which does not use epicorr.io's write-error handling")
 def test_32_disk_full(case, capsys, monkeypatch):
     """ENOSPC in the middle of writing an output (simulated in-process: no small tmpfs here)."""
     src, out = case

@@ -9,11 +9,11 @@ and ``os.replace``; every image gets a JSON sidecar with ``Sources``,
 from __future__ import annotations
 
 import os
-import shutil
-import tempfile
 from pathlib import Path
 from typing import Any, Mapping
 
+from ..errors import EpicorrInputError
+from ..io import copy_file_atomic
 from ._derivatives import bids_uri, output_path, sidecar_for
 from ._layout import BidsDataset
 from ._plan import PlanItem
@@ -25,20 +25,14 @@ _DROP_KEYS = {"IntendedFor", "B0FieldSource", "B0FieldIdentifier"}
 
 
 def atomic_copy(src: str | os.PathLike, dst: str | os.PathLike) -> Path:
-    """Copy ``src`` to ``dst`` through a temporary file in ``dst``'s folder."""
+    """Copy ``src`` to ``dst`` through a temporary file in ``dst``'s folder (:func:`epicorr.io.copy_file_atomic`)."""
     dst = Path(dst)
-    dst.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=dst.parent, prefix=f".{dst.name}.", suffix=".part")
-    os.close(fd)
     try:
-        shutil.copyfile(src, tmp)
-        os.chmod(tmp, 0o644)
-        os.replace(tmp, dst)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-    return dst
+        dst.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as err:
+        raise EpicorrInputError(f"cannot create the output folder ({err.strerror or err})",
+                                file=dst.parent, hint="choose a writable output folder") from err
+    return copy_file_atomic(src, dst)
 
 
 def _json(path: Path) -> Path:
