@@ -58,6 +58,11 @@ __all__ = [
     "distort",
 ]
 
+#: Largest plausible |displacement| as a fraction of the PE matrix (common practice:
+#: susceptibility shifts are a few voxels, rarely over 10 % of the FOV; half the
+#: FOV means a unit slip, e.g. rad/s or T read as Hz).
+MAX_SHIFT_FRACTION = 0.5
+
 
 def _axis(pe_axis: Any) -> int:
     axis = getattr(pe_axis, "axis", pe_axis)  # accept a PEDirection
@@ -121,7 +126,16 @@ def field_to_displacement(field_hz: Any, *, pe: PEDirection | str, voxels_per_hz
     if not np.all(np.isfinite(field)):
         raise EpicorrInputError("field map contains NaN or infinite values", key="field",
                                 hint="fill or mask the field map before use")
-    return field * (pe.polarity * float(voxels_per_hz))
+    disp = field * (pe.polarity * float(voxels_per_hz))
+    n_pe = field.shape[pe.axis]
+    largest = float(np.max(np.abs(disp))) if disp.size else 0.0
+    if largest > MAX_SHIFT_FRACTION * n_pe:
+        raise EpicorrInputError(
+            f"field moves signal by up to {largest:.1f} voxels, more than half of the "
+            f"{n_pe} voxels along the phase-encode axis (the image would fold onto itself)",
+            key="field", value=f"{float(np.max(np.abs(field))):.1f} Hz",
+            hint="check the field map's Units (Hz expected) and the echo spacing")
+    return disp
 
 
 def displacement_to_mm(disp_vox: Any, *, pe_axis: int, zooms: Any) -> np.ndarray:

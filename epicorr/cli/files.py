@@ -95,6 +95,15 @@ def _check_out(path: str, flag: str) -> Path:
     return out
 
 
+def _refuse_overwriting_inputs(outputs: dict, inputs) -> None:
+    """Inputs are never modified: an output path naming an input is refused."""
+    ins = {Path(i).resolve() for i in inputs if i}
+    for flag, path in outputs.items():
+        if path and Path(path).resolve() in ins:
+            raise EpicorrInputError("output would overwrite an input", file=path, key=flag,
+                                    hint="write the result under another name")
+
+
 def _run_node(node, outputs: dict[str, str | None]) -> None:
     """Run a node in a temporary folder; move its outputs to the given paths."""
     from ..bids._export import atomic_copy
@@ -198,6 +207,8 @@ def _unwarp(args) -> int:
     for flag, path in (("series", args.series), ("--field", args.field)):
         if not Path(path).is_file():
             raise EpicorrInputError("file not found", file=path, key=flag)
+    _refuse_overwriting_inputs({"--out": out, "--out-displacement": disp_out},
+                               [args.series, args.field])
     with tempfile.TemporaryDirectory(prefix="epicorr-") as tmp:
         disp_path = Path(tmp) / "displacement.nii.gz"
         _run_node(FieldToDisplacement(field=args.field, reference=args.series,

@@ -51,8 +51,11 @@ class FieldToDisplacement(SimpleInterface):
                                     hint=f"bring it onto the target grid {tuple(ref.shape[:3])} first")
         pe = parse_pe_direction(meta.get("PhaseEncodingDirection"), file=where)
         timing = readout_timing(meta, n_pe_image=int(ref.shape[pe.axis]), file=where)
-        disp = field_to_displacement(np.asanyarray(field_img.dataobj, dtype=np.float64), pe=pe,
-                                     voxels_per_hz=timing.voxels_per_hz)
+        try:
+            disp = field_to_displacement(np.asanyarray(field_img.dataobj, dtype=np.float64), pe=pe,
+                                         voxels_per_hz=timing.voxels_per_hz)
+        except EpicorrInputError as err:
+            raise err.with_file(self.inputs.field) from None
         self._results["displacement"] = save_like(disp, field_img, runtime, "displacement.nii.gz")
         self._results["pe_direction"] = pe.bids
         self._results["info"] = {
