@@ -10,8 +10,9 @@ from epicorr.cli import main
 
 
 def test_demo_writes_files_and_reduces_error(tmp_path, capsys):
+    # Part (1) only: the study run (part 2) is exercised by test_demo_study.py in a subprocess.
     out = tmp_path / "demo"
-    assert main(["demo", str(out)]) == 0
+    assert main(["demo", str(out), "--phantom-only"]) == 0
     text = capsys.readouterr().out
     assert "SYNTHETIC DATA" in text and "not a medical device" in text
     summary = json.loads((out / "demo_summary.json").read_text())
