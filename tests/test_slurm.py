@@ -70,6 +70,11 @@ def test_start_script_is_idempotent(slurm_cluster):
     proc = _run(["bash", str(SLURM_DIR / "start-cluster.sh")], slurm_cluster)
     assert proc.returncode == 0, proc.stderr
     assert "already running" in proc.stdout
+    # The daemons must not have inherited the start lock: a free lock means a
+    # later start that does need it (cluster half down) cannot hang on it.
+    lock = Path(slurm_cluster["EPICORR_SLURM_STATE"]) / "start.lock"
+    free = _run(["flock", "-n", "-E", "3", str(lock), "true"], slurm_cluster, timeout=10)
+    assert free.returncode == 0, f"{lock} is held by a running process (fd inherited by a daemon?)"
 
 
 _WORKFLOW_SCRIPT = r"""

@@ -37,7 +37,16 @@ cluster_ready() {
     sinfo -h -N -o '%T' 2>/dev/null | grep -Eq '^(idle|mixed|allocated)'
 }
 
-# One start at a time (parallel test workers may call this together).
+# Fast path: a running cluster needs no lock.
+if cluster_ready; then
+  echo "start-cluster: already running"
+  echo "SLURM_CONF=$CONF"
+  exit 0
+fi
+
+# One start at a time (parallel test workers may call this together).  The
+# daemons below are started with fd 9 closed: a daemon that inherited it would
+# hold the lock for its whole life and every later start would wait on it.
 mkdir -p "$STATE"
 exec 9>"$STATE/start.lock"
 flock -w 120 9 || die "another start-cluster.sh holds $STATE/start.lock"
@@ -62,7 +71,7 @@ if [ ! -s /etc/munge/munge.key ]; then
 fi
 if ! alive "$MUNGE_SOCKET_DIR/munged.pid" || ! munge -n </dev/null >/dev/null 2>&1; then
   rm -f "$MUNGE_SOCKET_DIR/munge.socket.2" "$MUNGE_SOCKET_DIR/munged.pid"
-  runuser -u munge -- munged --force
+  runuser -u munge -- munged --force 9>&- </dev/null >>"$STATE/log/munged.out" 2>&1
   for _ in $(seq 50); do munge -n </dev/null >/dev/null 2>&1 && break; sleep 0.1; done
   munge -n </dev/null | unmunge >/dev/null || die "munged does not answer"
 fi
@@ -81,13 +90,13 @@ mv "$CONF.tmp" "$CONF"
 # --- daemons -------------------------------------------------------------------
 if ! alive "$STATE/slurmctld.pid"; then
   # -c: clear saved state (a stale test cluster leaves nothing behind); -i: ignore errors in it.
-  slurmctld -f "$CONF" -c -i
+  slurmctld -f "$CONF" -c -i 9>&- </dev/null >>"$STATE/log/slurmctld.out" 2>&1
 fi
 for _ in $(seq 100); do scontrol ping >/dev/null 2>&1 && break; sleep 0.2; done
 scontrol ping >/dev/null 2>&1 || die "slurmctld does not answer; see $STATE/log/slurmctld.log"
 
 if ! alive "$STATE/slurmd.pid"; then
-  slurmd -f "$CONF"
+  slurmd -f "$CONF" 9>&- </dev/null >>"$STATE/log/slurmd.out" 2>&1
 fi
 for _ in $(seq 150); do
   state="$(sinfo -h -N -o '%T' 2>/dev/null | head -1)"
