@@ -12,7 +12,9 @@ Layout::
     OUT_DIR/rawdata/   the BIDS dataset (validator-clean)
     OUT_DIR/truth/     ground truth, never inside rawdata:
         sub-<label>/sub-<label>_desc-truefield_fieldmap.nii.gz  field on the EPI grid, Hz
-        sub-<label>/sub-<label>_desc-undistorted_bold.nii.gz    EPI contrast without distortion
+        sub-<label>/sub-<label>_desc-undistorted_bold.nii.gz    the BOLD's first volume as it would be
+                                                                 without any off-resonance (same k-space
+                                                                 simulation, field zero, no noise)
         sub-<label>/sub-<label>_desc-retained_bold.nii.gz        true gradient-echo signal kept (0-1)
         sub-<label>/sub-<label>_desc-brain_mask.nii.gz
         sub-<label>/sub-<label>_desc-labels_dseg.nii.gz          tissue classes (simulate.LABELS)
@@ -273,7 +275,9 @@ def build_demo_study(out_dir, *, seed: int = 0, small: bool = True) -> dict:
         # ground truth on the EPI grid
         kept = true_retained_signal(field, echo_time=_TE_BOLD, affine=epi_aff)
         save_image(_nifti(field, epi_aff), tdir / f"{sub}_desc-truefield_fieldmap.nii.gz")
-        save_image(_nifti(head.epi_contrast * 1000.0, epi_aff), tdir / f"{sub}_desc-undistorted_bold.nii.gz")
+        clean = simulate_epi(head, np.zeros_like(field), pe=_BOLD_PE, effective_echo_spacing=_EES,
+                             echo_time=_TE_BOLD, kind="gradient-echo")
+        save_image(_nifti(clean * 1000.0, epi_aff), tdir / f"{sub}_desc-undistorted_bold.nii.gz")
         save_image(_nifti(kept, epi_aff), tdir / f"{sub}_desc-retained_bold.nii.gz")
         save_image(_nifti(head.brain_mask, epi_aff, dtype=np.uint8), tdir / f"{sub}_desc-brain_mask.nii.gz")
         save_image(_nifti(head.labels, epi_aff, dtype=np.int16), tdir / f"{sub}_desc-labels_dseg.nii.gz")

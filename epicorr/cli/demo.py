@@ -43,6 +43,9 @@ def register(subparsers) -> None:
                    help="BIDS phase-encoding direction of the simulated EPI (default j-)")
     p.add_argument("--phantom-only", action="store_true",
                    help="run only part (1), the phantom check (a few seconds)")
+    p.add_argument("--quick", action="store_true",
+                   help="build the study on coarse grids (5 mm EPI, 6 mm field maps): faster, but too "
+                        "coarse for the correction to show in the images")
     p.add_argument("--jobs", type=int, default=2, metavar="N",
                    help="parallel processes for the study run (default 2)")
     p.set_defaults(func=run)
@@ -140,7 +143,8 @@ def run(args: argparse.Namespace) -> int:
         "after": after,
     }
     if not getattr(args, "phantom_only", False):
-        summary["study"] = _run_study(out, jobs=max(1, int(getattr(args, "jobs", 2))))
+        summary["study"] = _run_study(out, jobs=max(1, int(getattr(args, "jobs", 2))),
+                                      small=bool(getattr(args, "quick", False)))
     save_json_atomic(summary, out / "demo_summary.json")
 
     print("epicorr demo: SYNTHETIC DATA (an invented phantom with a known field map).")
@@ -152,8 +156,12 @@ def run(args: argparse.Namespace) -> int:
     print(f"    unwarped:  RMSE {after['rmse']:8.4f}   correlation {after['correlation']:.5f}")
     print(f"  files written to {out}/: " + ", ".join(list(files) + ["demo_summary.json"]))
     for sub, row in summary.get("study", {}).get("subjects", {}).items():
-        print(f"  study {sub} ({row['route']}): field RMSE in the brain {row['field_rmse_hz']:.2f} Hz; "
-              f"BOLD vs truth correlation {row['corr_before']:.3f} -> {row['corr_after']:.3f}")
+        print(f"  study {sub} ({row['route']}): field error in the brain {row['field_rmse_hz']:.2f} Hz RMSE, "
+              f"median {row['field_median_abs_hz']:.2f} Hz; BOLD vs reference correlation "
+              f"{row['corr_before']:.3f} -> {row['corr_after']:.3f} (true field: {row['corr_true_field']:.3f})")
+    if summary.get("study", {}).get("subjects"):
+        print("  (reference: the undistorted simulation with the true through-slice signal loss applied; "
+              "'true field': the same BOLD unwarped with the simulator's own field)")
     if "study" in summary:
         print(f"  study: {summary['study']['exit_code'] == 0 and 'all subjects corrected' or 'some subjects failed'}"
               f" in {summary['study']['seconds']:.0f} s; QC pages in {out}/derivatives/epicorr/qc/")
@@ -161,8 +169,16 @@ def run(args: argparse.Namespace) -> int:
     return 0
 
 
-def _run_study(out: Path, *, jobs: int) -> dict:
-    """Build the demo study, run the pipeline on it, and score each route against the truth."""
+def _run_study(out: Path, *, jobs: int, small: bool = False) -> dict:
+    """Build the demo study, run the pipeline on it, and score each route against the truth.
+
+    Field: RMSE and median absolute error inside the brain, Hz.  Images: the
+    correlation inside the brain of the first BOLD volume, before and after
+    correction, with the *reference* = the undistorted simulation times the
+    true fraction of signal kept through the slice (signal lost by dephasing
+    cannot come back, so it is not counted against the correction); and, as
+    the ceiling, the same score for the BOLD unwarped with the true field.
+    """
     import json
     import time
 
@@ -171,7 +187,10 @@ def _run_study(out: Path, *, jobs: int) -> dict:
     from ..demo_study import build_demo_study
     from . import main as cli_main
 
-    built = build_demo_study(out, seed=0, small=True)
+    from ..displacement import field_to_displacement
+    from ..unwarp import unwarp
+
+    built = build_demo_study(out, seed=0, small=small)
     raw, deriv = Path(built["rawdata"]), out / "derivatives" / "epicorr"
     print("epicorr demo: running the pipeline on the synthetic study ...", flush=True)
     start = time.perf_counter()
@@ -196,11 +215,23 @@ def _run_study(out: Path, *, jobs: int) -> dict:
         after = np.asanyarray(nib.load(bold_out).dataobj, dtype=np.float64)[..., 0]
         if truth_img.ndim == 4:
             truth_img = truth_img[..., 0]
+        kept = np.asanyarray(nib.load(tdir / f"{sub}_desc-retained_bold.nii.gz").dataobj, dtype=np.float64)
+        reference = truth_img * kept
+        ceiling = unwarp(before, field_to_displacement(true_field, pe=info["bold_PhaseEncodingDirection"],
+                                                       voxels_per_hz=info["EffectiveEchoSpacing"] * info["n_pe"]),
+                         pe_axis=1, jacobian=True)
+        err = est[mask] - true_field[mask]
+
+        def corr(img):
+            return float(np.corrcoef(img[mask], reference[mask])[0, 1])
+
         rows[sub] = {
             "route": info.get("case", "?"),
-            "field_rmse_hz": float(np.sqrt(np.mean((est[mask] - true_field[mask]) ** 2))),
-            "corr_before": float(np.corrcoef(before[mask], truth_img[mask])[0, 1]),
-            "corr_after": float(np.corrcoef(after[mask], truth_img[mask])[0, 1]),
+            "field_rmse_hz": float(np.sqrt(np.mean(err ** 2))),
+            "field_median_abs_hz": float(np.median(np.abs(err))),
+            "corr_before": corr(before),
+            "corr_after": corr(after),
+            "corr_true_field": corr(ceiling),
         }
     return {"exit_code": code, "seconds": seconds, "subjects": rows,
             "rawdata": str(raw), "derivatives": str(deriv)}
