@@ -30,6 +30,7 @@ import numpy as np
 from .errors import EpicorrInputError
 
 __all__ = ["load_image", "load_sidecar", "save_image_atomic", "save_json_atomic", "save_text_atomic",
+           "remove_stale_temporaries",
            "copy_file_atomic", "image_like"]
 
 _NIFTI_SUFFIXES = (".nii", ".nii.gz", ".hdr", ".img", ".img.gz", ".hdr.gz")
@@ -246,6 +247,39 @@ def _atomic_write(path: Any, write) -> Path:
     except OSError:  # pragma: no cover - some file systems refuse
         pass
     return path
+
+
+def remove_stale_temporaries(folder: Any, *, name_prefix: str) -> list[Path]:
+    """Delete the hidden temporaries an interrupted atomic write left behind.
+
+    The atomic writers name a temporary ``.<final name>.<random>.part<ext>``
+    beside its final file and rename it when complete; a process killed in
+    between leaves it.  Only temporaries whose final name starts with
+    ``name_prefix`` followed by ``_`` or ``.`` (e.g. ``"sub-01"``, which
+    leaves ``sub-010``'s alone) are removed, anywhere under
+    ``folder``, so a re-run of one subject never touches another's writes in
+    progress.  A missing folder is fine.
+
+    Returns
+    -------
+    list of Path
+        The files removed.
+    """
+    root = Path(folder)
+    removed: list[Path] = []
+    if not root.is_dir():
+        return removed
+    for path in root.rglob(f".{name_prefix}*.part*"):
+        rest = path.name[1:]
+        after = rest[len(name_prefix):len(name_prefix) + 1]
+        if not rest.startswith(name_prefix) or after not in ("_", ".") or not path.is_file():
+            continue
+        try:
+            path.unlink()
+            removed.append(path)
+        except FileNotFoundError:
+            pass
+    return removed
 
 
 def save_image_atomic(img: nib.Nifti1Image, path: Any) -> Path:

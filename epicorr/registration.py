@@ -35,6 +35,7 @@ Neuroinform 2013;7:45.
 
 from __future__ import annotations
 
+import contextlib
 from dataclasses import dataclass, field
 from typing import Any, Sequence
 
@@ -148,6 +149,26 @@ def correlation_in_mask(a: Any, b: Any, mask: Any = None) -> float:
     return float((x * y).sum() / den) if den > 0 else float("nan")
 
 
+@contextlib.contextmanager
+def itk_threads(threads: int = 1):
+    """Pin ITK's global default thread count for the duration of a block.
+
+    ITK filters and registration metrics that are not given a thread count
+    take the global default; with several threads their reductions come out
+    in a run-dependent order (about 1e-13 in a registration's transform,
+    enough to flip float32 output bits).  One thread makes them bit-for-bit
+    reproducible.
+    """
+    import SimpleITK as sitk
+
+    saved = sitk.ProcessObject.GetGlobalDefaultNumberOfThreads()
+    sitk.ProcessObject.SetGlobalDefaultNumberOfThreads(max(1, int(threads)))
+    try:
+        yield
+    finally:
+        sitk.ProcessObject.SetGlobalDefaultNumberOfThreads(saved)
+
+
 def register_rigid(moving: Any, fixed: Any, *, moving_affine: Any, fixed_affine: Any, fixed_mask: Any = None,
                    moving_mask: Any = None, initial: Any = None, iterations: int = 200,
                    shrink_factors: Sequence[int] = (4, 2, 1), smoothing_voxels: Sequence[float] = (2, 1, 0),
@@ -178,7 +199,8 @@ def register_rigid(moving: Any, fixed: Any, *, moving_affine: Any, fixed_affine:
     seed : int
         Seed of the metric's sampling.
     threads : int
-        ITK threads.  One by default: the result is then bit-for-bit
+        ITK threads, for the method and (during the call) ITK's global
+        default.  One by default: the result is then bit-for-bit
         reproducible (multi-threaded metric sums are not), and on a busy
         machine it is also faster.
 
@@ -226,7 +248,13 @@ def register_rigid(moving: Any, fixed: Any, *, moving_affine: Any, fixed_affine:
         r = m_lps[:3, :3]
         init.SetTranslation([float(v) for v in m_lps[:3, 3] + r @ centre - centre])
     reg.SetInitialTransform(init, inPlace=False)
-    out = reg.Execute(f_img, m_img)
+    # The metric, the pyramid filters and the scales estimator take their
+    # thread count from ITK's global default, not from the method's setting;
+    # with several threads their sums come out in a different order from run
+    # to run (about 1e-13 mm in the transform, enough to flip float32 output
+    # bits).  Pin the global default for the call, then restore it.
+    with itk_threads(threads):
+        out = reg.Execute(f_img, m_img)
     euler = sitk.Euler3DTransform(out.GetNthTransform(0) if hasattr(out, "GetNthTransform") else out)
     m_lps = _euler_to_matrix(euler)
     t_ras = ras_to_lps(m_lps)

@@ -205,3 +205,22 @@ def test_json_atomic(tmp_path):
         save_json_atomic({"x": float("nan")}, tmp_path / "nan.json")   # not valid JSON
     assert not (tmp_path / "nan.json").exists()
     assert sorted(p.name for p in tmp_path.iterdir()) == ["summary.json"]
+
+
+def test_stale_temporaries_of_one_subject_are_removed_and_nothing_else(tmp_path):
+    # The atomic writer's temporary naming: ".<final name>.<random>.part<ext>" (see _atomic_write).
+    from epicorr.io import remove_stale_temporaries
+
+    func = tmp_path / "sub-01" / "func"
+    func.mkdir(parents=True)
+    stale = [func / ".sub-01_task-a_desc-field_fieldmap.json.k2j3.part.json",
+             func / ".sub-01_task-a_desc-unwarped_bold.nii.gz.x9y8.part.nii.gz"]
+    keep = [func / "sub-01_task-a_desc-field_fieldmap.json",            # a final output
+            func / ".sub-010_task-a_bold.nii.gz.q1w2.part.nii.gz",      # another subject's write
+            func / ".hidden_note.part"]                                 # not ours at all
+    for p in stale + keep:
+        p.write_text("x")
+    removed = remove_stale_temporaries(tmp_path / "sub-01", name_prefix="sub-01")
+    assert sorted(removed) == sorted(stale)
+    assert all(p.exists() for p in keep) and not any(p.exists() for p in stale)
+    assert remove_stale_temporaries(tmp_path / "missing", name_prefix="sub-01") == []

@@ -148,9 +148,6 @@ def test_sigkill_leaves_no_half_written_final_file_and_rerun_finishes(killed_and
                                    rtol=0, atol=1e-4, err_msg=key)
 
 
-@pytest.mark.xfail(strict=False, reason="intermittently not deterministic: two uninterrupted serial runs "
-                   "sometimes differ in the first subject's field, displacement, uncertainty, retained-signal "
-                   "and unwarped images (float32 rounding, <= 4e-6 Hz); the second subject is identical")
 def test_rerun_outputs_are_byte_identical(killed_and_rerun):
     r = killed_and_rerun
     expected = _derivative_bytes(r["reference"])
@@ -159,8 +156,6 @@ def test_rerun_outputs_are_byte_identical(killed_and_rerun):
     assert differing == [], f"re-run differs from an uninterrupted run: {differing}"
 
 
-@pytest.mark.xfail(strict=False, reason="depending on when it lands, a SIGKILL during export leaves hidden '.<name>.<random>.part.json' "
-                   "temporaries in the subject's output folder; the re-run does not remove them")
 def test_rerun_leaves_no_temporaries(killed_and_rerun):
     out = killed_and_rerun["out"]
     assert not [p for p in out.rglob("*.part*") if ".epicorr-work" not in p.parts]

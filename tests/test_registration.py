@@ -107,3 +107,29 @@ def test_registration_recovers_a_known_rigid_motion():
                            initial=reg.transform, shrink_factors=(1,), smoothing_voxels=(0,))
     err2 = apply_affine(again.transform, pts) - apply_affine(reg.transform, pts)
     assert np.sqrt((err2 ** 2).sum(axis=1).mean()) < 0.5
+
+
+_REPRO_SCRIPT = r"""
+import sys
+import SimpleITK as sitk
+sitk.ProcessObject.SetGlobalDefaultNumberOfThreads(2)   # a caller's multi-threaded default
+from epicorr.simulate import default_affine, motion_matrix, synthetic_head
+from epicorr.registration import register_rigid
+aff = default_affine((32, 40, 28), 4.0)
+head = synthetic_head(shape=(32, 40, 28), affine=aff, seed=2)
+moved = head.moved(motion_matrix(rotation_deg=(2, 1, 0), translation_mm=(1, -2, 1)))
+reg = register_rigid(head.gre_magnitude, moved.epi_contrast, moving_affine=aff, fixed_affine=aff)
+assert sitk.ProcessObject.GetGlobalDefaultNumberOfThreads() == 2   # restored
+print(reg.transform.tobytes().hex())
+"""
+
+
+def test_registration_is_bit_for_bit_reproducible_across_processes():
+    # Same inputs, same bytes: ITK reductions with several threads sum in a run-dependent order,
+    # so the registration pins ITK's global default to one thread for its call (and restores it).
+    import subprocess
+    import sys
+
+    outs = {subprocess.run([sys.executable, "-c", _REPRO_SCRIPT], capture_output=True, text=True,
+                           check=True, timeout=120).stdout.strip() for _ in range(3)}
+    assert len(outs) == 1, outs

@@ -155,6 +155,11 @@ def process_subject(ds, subject: str, *, out_dir: Path, scratch: Path, plugin: s
     handler, saved = _attach_log(log_path)
     crash_dir = scratch / f"sub-{subject}" / "crash"
     try:
+        from ..io import remove_stale_temporaries
+
+        for folder in (out_dir / f"sub-{subject}", out_dir / "qc"):
+            for stale in remove_stale_temporaries(folder, name_prefix=f"sub-{subject}"):
+                _LOG.info("removed a temporary left by an interrupted run: %s", stale)
         _LOG.info("subject %s: planning", subject)
         progress.say("finding targets and field maps")
         plan = plan_subject(ds, subject, field_source=field_source)
@@ -248,6 +253,12 @@ def run(args) -> int:
     scratch = Path(args.scratch).resolve() if args.scratch else out_dir / ".epicorr-work"
     command = ["epicorr"] + (sys.argv[1:] if sys.argv and "epicorr" in Path(sys.argv[0]).name
                              else ["run", str(bids_dir), str(out_dir), "participant"])
+    # Batch-level files an interrupted run may have left half-written as temporaries.
+    for folder, name in ((out_dir, "dataset_description.json"), (out_dir / "qc", "index.html"),
+                         (out_dir / "logs", "summary.json")):
+        if folder.is_dir():
+            for stale in folder.glob(f".{name}.*.part*"):
+                stale.unlink(missing_ok=True)
     write_dataset_description(out_dir, source_dir=bids_dir, command=command)
     options = {"Interpolation": args.interpolation, "Jacobian": not args.no_jacobian,
                "DropoutThreshold": float(args.dropout_threshold)}

@@ -21,6 +21,8 @@ from __future__ import annotations
 import numpy as np
 import SimpleITK as sitk
 
+from ..registration import itk_threads
+
 __all__ = ["rigid_register", "rigid_resample", "transform_magnitude"]
 
 
@@ -73,7 +75,9 @@ def rigid_register(fixed, moving, *, spacing, frozen_translation_axis=None, iter
     reg.SetShrinkFactorsPerLevel([2, 1])
     reg.SetSmoothingSigmasPerLevel([1.0, 0.0])
     reg.SetInitialTransform(tx, inPlace=True)
-    reg.Execute(f, m)
+    reg.SetNumberOfThreads(1)
+    with itk_threads(1):  # bit-for-bit reproducible (see epicorr.registration.itk_threads)
+        reg.Execute(f, m)
     return tx
 
 
