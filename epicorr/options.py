@@ -126,7 +126,7 @@ def parse_option(enum_cls: type[E], value: object, *, name: str, file: object = 
 
 
 class EchoKind(_Option):
-    """Echo type of a simulated EPI series (``epicorr.simulate``)."""
+    """Echo type of an EPI series (the simulator, and the dropout model's choice of physics)."""
 
     SPIN_ECHO = "spin-echo"          #: static off-resonance phase refocused at TE
     GRADIENT_ECHO = "gradient-echo"  #: static phase accrues over TE (through-plane dephasing)

@@ -394,3 +394,37 @@ def test_dropout_dice_on_the_simulated_head():
     # the full mask adds the in-plane losses the truth does not model; it must contain
     # most of the true dropout (measured 0.936)
     assert np.sum(pred.mask & true_mask) / true_mask.sum() >= 0.8
+
+
+# -- spin echo --------------------------------------------------------------------
+def test_spin_echo_predicts_no_dephasing_loss_where_a_gradient_echo_loses_signal():
+    # Hahn's spin echo refocuses static off-resonance phase at TE (Hahn, Phys Rev 1950;80:580; Bernstein,
+    # King & Zhou, Handbook of MRI Pulse Sequences, 2004, ch. 14); in spin-echo EPI the echo is at the k-space
+    # centre, so neither through-plane dephasing nor the echo shift removes signal.  The gradient-echo model on
+    # the same field must predict loss (the check would not pass with a model that ignores the field).
+    shape = (20, 24, 16)
+    z = np.arange(shape[2])[None, None, :] * np.ones(shape)
+    field = 12.0 * z * 3.0        # 12 Hz/mm through the slices: one cycle over 3 mm at 27.8 ms
+    kw = dict(affine=_affine(), pe="j", effective_echo_spacing=EES, n_pe=shape[1], echo_time=0.08)
+    se = predict_retained_signal(field, echo_kind="spin-echo", **kw)
+    ge = predict_retained_signal(field, echo_kind="gradient-echo", **kw)
+    assert np.all(se.retained == 1.0) and not se.mask.any()
+    assert se.info["echo_kind"] == "spin-echo"
+    assert np.nanmedian(ge.retained) < 0.5 and ge.mask.mean() > 0.5
+
+
+@pytest.mark.parametrize("meta, suffix, kind, fallback", [
+    ({"ScanningSequence": "EP\\SE"}, "bold", "spin-echo", False),     # DICOM (0018,0020) multi-valued
+    ({"ScanningSequence": ["EP", "GR"]}, "dwi", "gradient-echo", False),
+    ({"ScanningSequence": "GR\\IR"}, None, "gradient-echo", False),
+    ({}, "dwi", "spin-echo", True),                                     # common practice
+    ({}, "epi", "spin-echo", True),
+    ({}, "bold", "gradient-echo", True),
+    ({}, "sbref", "gradient-echo", True),
+])
+def test_echo_kind_from_scanning_sequence_or_suffix(meta, suffix, kind, fallback):
+    # ScanningSequence: a BIDS key carrying DICOM attribute (0018,0020): SE spin echo, GR gradient recalled.
+    proto = protocol_from_metadata(dict(meta, EchoTime=0.05, SliceThickness=3.0), zooms=(3, 3, 3),
+                                   slice_axis=2, suffix=suffix)
+    assert proto.echo_kind.value == kind
+    assert ("fallback" in proto.sources["echo_kind"]) is fallback

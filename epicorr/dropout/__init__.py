@@ -24,7 +24,7 @@ from ._in_plane import pe_echo_factor, pe_echo_shift_lines, pe_retained, readout
 from ._predict import (DEFAULT_DROPOUT_THRESHOLD, DropoutPrediction, dropout_mask,
                        half_loss_gradient_hz_per_mm, interface_distance_map,
                        predict_retained_signal)
-from ._protocol import DropoutProtocol, protocol_from_metadata
+from ._protocol import DropoutProtocol, echo_kind_from_metadata, protocol_from_metadata
 from ._summary import DropoutCluster, DropoutSummary, summarize_dropout
 from ._through_plane import through_plane_retained
 
@@ -40,6 +40,7 @@ __all__ = [
     "half_loss_gradient_hz_per_mm",
     "summarize_dropout",
     "protocol_from_metadata",
+    "echo_kind_from_metadata",
     "through_plane_retained",
     "pe_echo_factor",
     "pe_echo_shift_lines",

@@ -44,7 +44,7 @@ from scipy import ndimage
 
 from ..errors import EpicorrInputError
 from ..geometry import PEDirection, parse_pe_direction
-from ..options import SliceProfile, parse_option
+from ..options import EchoKind, SliceProfile, parse_option
 from ._gradient import field_gradient_hz_per_mm, voxel_sizes_mm
 from ._in_plane import pe_echo_factor, pe_retained, readout_retained
 from ._through_plane import through_plane_retained
@@ -226,6 +226,7 @@ def predict_retained_signal(field_hz: Any, *, affine: Any, pe: PEDirection | str
                             lines_before_centre: int | None = None,
                             t2star: float | None = None, readout_condition: bool = True,
                             pe_echo_condition: bool = True,
+                            echo_kind: EchoKind | str = EchoKind.GRADIENT_ECHO,
                             sources: Mapping[str, str] | None = None) -> DropoutPrediction:
     """Predict the fraction of EPI signal that survives intra-voxel dephasing.
 
@@ -268,6 +269,14 @@ def predict_retained_signal(field_hz: Any, *, affine: Any, pe: PEDirection | str
         a region much larger than a voxel; for gradients confined to a few
         voxels it predicts more loss than a k-space simulation shows (see
         ``benchmarks/bench_dropout.py``).  ``echo_factor`` is computed either way.
+    echo_kind : EchoKind or str
+        ``"gradient-echo"`` (BOLD, default) or ``"spin-echo"`` (diffusion,
+        spin-echo field-map references).  In a spin echo the static
+        off-resonance phase is refocused at the echo, which coincides with the
+        k-space centre: there is no through-plane dephasing and no echo shift at
+        the centre, and the model predicts no loss (retained 1 wherever the
+        field is finite).  What remains of the field in a spin echo is geometric
+        (stretch and pile-up), the unwarping's business.
     sources : mapping, optional
         Provenance of the inputs (e.g. from :func:`protocol_from_metadata`);
         copied into ``info["sources"]``.
@@ -313,15 +322,20 @@ def predict_retained_signal(field_hz: Any, *, affine: Any, pe: PEDirection | str
 
     g_slice = field_gradient_hz_per_mm(f, zooms=zooms, axis=slice_axis, support=support)
     g_pe = field_gradient_hz_per_mm(f, zooms=zooms, axis=pe_dir.axis, support=support)
-    tp = through_plane_retained(g_slice, slice_thickness_mm=dz, echo_time=te, profile=prof)
+    kind = parse_option(EchoKind, echo_kind, name="echo_kind")
+    spin_echo = kind is EchoKind.SPIN_ECHO
+    tp = (np.ones_like(f) if spin_echo else
+          through_plane_retained(g_slice, slice_thickness_mm=dz, echo_time=te, profile=prof))
     q = pe_echo_factor(g_pe, polarity=pe_dir.polarity, effective_echo_spacing=effective_echo_spacing,
                        n_pe=n_pe, voxel_size_pe_mm=float(zooms[pe_dir.axis]))
-    if pe_echo_condition:
+    if spin_echo:
+        pe_term = np.ones_like(f)
+    elif pe_echo_condition:
         pe_term = pe_retained(q, echo_time=te, effective_echo_spacing=effective_echo_spacing,
                               n_pe=n_pe, lines_before_centre=lines_before_centre, t2star=t2star)
     else:
         pe_term = np.ones_like(f)
-    if readout_condition:
+    if readout_condition and not spin_echo:
         g_ro = field_gradient_hz_per_mm(f, zooms=zooms, axis=readout_axis, support=support)
         with np.errstate(divide="ignore", invalid="ignore"):
             te_eff = np.where(q > 0, te / np.where(q > 0, q, 1.0), np.nan)
@@ -362,8 +376,10 @@ def predict_retained_signal(field_hz: Any, *, affine: Any, pe: PEDirection | str
         "n_lost_readout": int((region & (ro_term == 0)).sum()),
         "n_nonfinite_field": int((~finite).sum()),
         "sources": dict(sources or {}),
-        "model": "through-plane x phase-encode echo shift x readout condition "
-                 "(Deichmann et al. 2002; Weiskopf et al. 2006, 2007)",
+        "echo_kind": kind.value,
+        "model": ("spin echo: static dephasing refocused at the echo, no loss predicted" if spin_echo else
+                  "through-plane x phase-encode echo shift x readout condition "
+                  "(Deichmann et al. 2002; Weiskopf et al. 2006, 2007)"),
     }
     protocol = dict(affine=np.asarray(affine, dtype=np.float64), pe=pe_dir,
                     effective_echo_spacing=float(effective_echo_spacing), n_pe=int(n_pe),
@@ -371,6 +387,7 @@ def predict_retained_signal(field_hz: Any, *, affine: Any, pe: PEDirection | str
                     profile=prof, brain_mask=brain, threshold=float(threshold),
                     lines_before_centre=lines_before_centre, t2star=t2star,
                     readout_condition=bool(readout_condition),
-                    pe_echo_condition=bool(pe_echo_condition), sources=dict(sources or {}))
+                    pe_echo_condition=bool(pe_echo_condition), echo_kind=kind,
+                    sources=dict(sources or {}))
     return DropoutPrediction(retained=retained, through_plane=tp, in_plane=in_plane, mask=mask,
                              echo_factor=q, interface_mm=interface, info=info, protocol=protocol)

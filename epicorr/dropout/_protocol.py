@@ -10,6 +10,14 @@ Choices (documented behaviour)
 * ``EchoTime`` absent: an :class:`~epicorr.errors.EpicorrInputError`
   naming the file and the key.  There is **no fallback**: every dephasing
   term scales with TE and no default would be honest.
+* Echo kind: from ``ScanningSequence`` (a BIDS key carrying the DICOM
+  attribute (0018,0020): ``"SE"`` spin echo, ``"GR"`` gradient recalled,
+  ``"EP"`` echo planar; a list or a ``\\``-separated string).  ``GR`` gives a
+  gradient echo, ``SE`` without ``GR`` a spin echo.  Absent or neither: by the
+  BIDS suffix (common practice): ``dwi`` and spin-echo field-map ``epi``
+  references are spin echoes, ``bold`` and ``sbref`` gradient echoes; the
+  choice is recorded in ``sources["echo_kind"]`` (the suffix rule is the
+  norm for BIDS data, so it is not listed among the ``fallbacks``).
 * ``SliceThickness`` absent: fall back to the voxel size along the slice
   axis and flag it (``sources["slice_thickness_mm"]`` says so and
   ``"SliceThickness"`` is listed in ``fallbacks``).  Callers should copy the
@@ -25,9 +33,11 @@ from typing import Any, Mapping
 import numpy as np
 
 from ..errors import EpicorrInputError
+from ..options import EchoKind
 from ._predict import MAX_ECHO_TIME_S
 
-__all__ = ["DropoutProtocol", "protocol_from_metadata", "MAX_SLICE_THICKNESS_MM"]
+__all__ = ["DropoutProtocol", "protocol_from_metadata", "echo_kind_from_metadata", "MAX_SLICE_THICKNESS_MM",
+           "SPIN_ECHO_SUFFIXES"]
 
 #: Thickest plausible EPI slice, mm (common practice: 1-5 mm; over 20 mm is
 #: a unit error or a corrupt sidecar).
@@ -46,12 +56,15 @@ class DropoutProtocol:
         ``{"echo_time": ..., "slice_thickness_mm": ...}``: where each came from.
     fallbacks : tuple of str
         Sidecar keys that were absent and replaced (``("SliceThickness",)`` or ``()``).
+    echo_kind : EchoKind
+        Spin or gradient echo (see the module notes).
     """
 
     echo_time: float
     slice_thickness_mm: float
     sources: dict = field(default_factory=dict, compare=False)
     fallbacks: tuple = ()
+    echo_kind: EchoKind = EchoKind.GRADIENT_ECHO
 
 
 def _number(metadata: Mapping[str, Any], key: str, *, file: Any, unit: str, upper: float,
@@ -73,8 +86,31 @@ def _number(metadata: Mapping[str, Any], key: str, *, file: Any, unit: str, uppe
     return v
 
 
+#: Spin-echo suffixes when the sidecar does not say (common practice: diffusion
+#: EPI and the reversed-PE ``epi`` references are spin echoes).
+SPIN_ECHO_SUFFIXES = frozenset({"dwi", "epi"})
+
+
+def echo_kind_from_metadata(metadata: Mapping[str, Any], *, suffix: str | None = None) -> tuple[EchoKind, str]:
+    """Spin or gradient echo, and where that came from (see the module notes)."""
+    seq = metadata.get("ScanningSequence")
+    tokens: set[str] = set()
+    if isinstance(seq, str):
+        tokens = {t.strip().upper() for t in seq.replace("\\", " ").replace(",", " ").split()}
+    elif isinstance(seq, (list, tuple)):
+        tokens = {str(t).strip().upper() for t in seq}
+    if "GR" in tokens:
+        return EchoKind.GRADIENT_ECHO, "sidecar ScanningSequence (GR)"
+    if "SE" in tokens:
+        return EchoKind.SPIN_ECHO, "sidecar ScanningSequence (SE)"
+    if suffix in SPIN_ECHO_SUFFIXES:
+        return EchoKind.SPIN_ECHO, f"BIDS suffix '{suffix}' (fallback: ScanningSequence absent or unclear)"
+    return EchoKind.GRADIENT_ECHO, (f"BIDS suffix '{suffix}'" if suffix else "default") + \
+        " (fallback: ScanningSequence absent or unclear)"
+
+
 def protocol_from_metadata(metadata: Mapping[str, Any], *, zooms: Any, slice_axis: int,
-                           file: Any = None) -> DropoutProtocol:
+                           file: Any = None, suffix: str | None = None) -> DropoutProtocol:
     """Read ``EchoTime`` and ``SliceThickness`` from a sidecar.
 
     Parameters
@@ -87,6 +123,9 @@ def protocol_from_metadata(metadata: Mapping[str, Any], *, zooms: Any, slice_axi
         Array axis of the slices.
     file : optional
         The sidecar's path, for error messages.
+    suffix : str, optional
+        BIDS suffix of the image (``"bold"``, ``"dwi"``, ...), for the
+        echo-kind fallback.
 
     Returns
     -------
@@ -125,4 +164,7 @@ def protocol_from_metadata(metadata: Mapping[str, Any], *, zooms: Any, slice_axi
         sources["slice_thickness_mm"] = ("voxel size along the slice axis "
                                          "(fallback: SliceThickness absent from the sidecar)")
         fallbacks = ("SliceThickness",)
-    return DropoutProtocol(echo_time=te, slice_thickness_mm=dz, sources=sources, fallbacks=fallbacks)
+    kind, kind_source = echo_kind_from_metadata(metadata, suffix=suffix)
+    sources["echo_kind"] = kind_source
+    return DropoutProtocol(echo_time=te, slice_thickness_mm=dz, sources=sources, fallbacks=fallbacks,
+                           echo_kind=kind)

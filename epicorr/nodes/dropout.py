@@ -29,6 +29,12 @@ class _DropoutOutputSpec(TraitedSpec):
                             "model details")
 
 
+def _bids_suffix(path) -> str | None:
+    """``bold`` for ``sub-01_task-a_bold.nii.gz``; None when the name has no ``_``."""
+    name = str(path).rsplit("/", 1)[-1].split(".", 1)[0]
+    return name.rsplit("_", 1)[1] if "_" in name else None
+
+
 class PredictDropout(SimpleInterface):
     """Retained signal after intra-voxel dephasing (:func:`epicorr.dropout.predict_retained_signal`)."""
 
@@ -51,7 +57,8 @@ class PredictDropout(SimpleInterface):
         if isinstance(sed, str) and sed[:1] in "ijk" and sed:
             slice_axis = "ijk".index(sed[0])
         zooms = [float(z) for z in fimg.header.get_zooms()[:3]]
-        protocol = protocol_from_metadata(meta, zooms=zooms, slice_axis=slice_axis, file=where)
+        protocol = protocol_from_metadata(meta, zooms=zooms, slice_axis=slice_axis, file=where,
+                                          suffix=_bids_suffix(self.inputs.reference))
         mask = None
         if isdefined(self.inputs.brain_mask):
             mimg = load_image(self.inputs.brain_mask, allowed_ndim=(3,), name="brain mask")
@@ -61,7 +68,8 @@ class PredictDropout(SimpleInterface):
             effective_echo_spacing=timing.effective_echo_spacing, n_pe=timing.n_pe,
             echo_time=protocol.echo_time, slice_axis=slice_axis,
             slice_thickness_mm=protocol.slice_thickness_mm, profile=self.inputs.profile,
-            brain_mask=mask, threshold=float(self.inputs.threshold), sources=protocol.sources)
+            brain_mask=mask, threshold=float(self.inputs.threshold), echo_kind=protocol.echo_kind,
+            sources=protocol.sources)
         pre = self.inputs.out_prefix
         self._results["retained"] = save_like(np.nan_to_num(pred.retained, nan=0.0), fimg, runtime,
                                               f"{pre}retained.nii.gz")
@@ -69,6 +77,7 @@ class PredictDropout(SimpleInterface):
                                           f"{pre}dropout_mask.nii.gz", dtype=np.uint8)
         info = dict(pred.info)
         info.update({"EchoTime": protocol.echo_time, "SliceThickness": protocol.slice_thickness_mm,
+                     "EchoKind": protocol.echo_kind.value,
                      "ProtocolSources": dict(protocol.sources), "Fallbacks": list(protocol.fallbacks),
                      "Threshold": float(self.inputs.threshold), "SliceProfile": self.inputs.profile,
                      "SliceAxis": "ijk"[slice_axis]})
