@@ -23,6 +23,9 @@ from epicorr.cli import main
 
 bids = pytest.importorskip("bids")
 
+# In-process runs use the serial executor: a forking executor inside a test worker that already
+# holds thread pools (from earlier tests) can deadlock its children.
+
 
 def _hashes(folder: Path) -> dict:
     return {p.relative_to(folder).as_posix(): hashlib.sha256(p.read_bytes()).hexdigest()
@@ -34,7 +37,7 @@ def finished_run(tmp_path_factory):
     base = tmp_path_factory.mktemp("bidsrun")
     raw, out = base / "raw", base / "out"
     make_tiny_study(raw)
-    code = main(["run", str(raw), str(out), "participant", "--quiet"])
+    code = main(["run", str(raw), str(out), "participant", "--quiet", "--executor", "serial"])
     assert code == 0
     return raw, out
 
@@ -85,7 +88,7 @@ def test_bad_subjects_fail_alone_with_file_and_key_and_inputs_untouched(tmp_path
     side4 = raw / "sub-04" / "fmap" / "sub-04_dir-PA_epi.json"
     side4.write_text(json.dumps(dict(json.loads(side4.read_text()), PhaseEncodingDirection="j-")))
     before = _hashes(raw)
-    code = main(["run", str(raw), str(out), "participant", "--quiet"])
+    code = main(["run", str(raw), str(out), "participant", "--quiet", "--executor", "serial"])
     text = capsys.readouterr()
     lines = (text.out + text.err).splitlines()
     failed = [ln for ln in lines if "FAILED" in ln]
