@@ -35,7 +35,7 @@ import numpy as np
 import scipy.ndimage as ndi
 
 from .errors import EpicorrInputError
-from .phase._mask import otsu_threshold
+from .phase import otsu_threshold
 
 __all__ = ["epi_brain_mask"]
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 from nipype.interfaces.utility import IdentityInterface, Select
 from nipype.pipeline import engine as pe
 
-from epicorr.nodes import (FieldToDisplacement, FieldToTargetGrid, PredictDropout, QCMetrics,
+from epicorr.nodes import (EpiBrainMask, FieldToDisplacement, FieldToTargetGrid, PredictDropout, QCMetrics,
                            UnwarpSeries)
 from epicorr.options import Interpolation, parse_option
 
@@ -30,6 +30,8 @@ TAIL_OUTPUTS: dict[str, str] = {
     "field": "field in Hz on the target grid",
     "sigma": "field standard deviation, Hz, on the target grid",
     "mask": "measurement mask on the target grid",
+    "brain_mask": "brain mask of the first corrected series, inside the measurement mask (the "
+                  "in-brain statistics of dropout and QC use it)",
     "reference": "3-D target reference volume used for registration",
     "registration_quality": "correlation of the moved magnitude with the target reference",
     "registration_info": "registration rounds, transform and timings (dict)",
@@ -76,6 +78,8 @@ def build_tail_workflow(name: str = "tail", *, interpolation: Interpolation | st
     dropout = pe.MapNode(PredictDropout(threshold=float(dropout_threshold)),
                          iterfield=["metadata"], name="dropout")
     first_mask = pe.Node(Select(index=[0]), name="first_dropout_mask")
+    first_series = pe.Node(Select(index=[0]), name="first_corrected_series")
+    brain = pe.Node(EpiBrainMask(), name="brain_mask")
     qc = pe.Node(QCMetrics(), name="qc_metrics")
 
     common = [("reference", "reference"), ("metadata", "metadata"), ("metadata_file", "metadata_file")]
@@ -88,9 +92,15 @@ def build_tail_workflow(name: str = "tail", *, interpolation: Interpolation | st
         (to_disp, unwarp, [("displacement", "displacement"), ("pe_direction", "pe_direction")]),
         (inputnode, dropout, [("reference", "reference"), ("echo_metadata", "metadata"),
                               ("metadata_file", "metadata_file")]),
-        (to_grid, dropout, [("field", "field"), ("mask", "brain_mask")]),
+        (unwarp, first_series, [("out_file", "inlist")]),
+        (first_series, brain, [("out", "in_file")]),
+        (to_grid, brain, [("mask", "measurement_mask")]),
+        (to_grid, dropout, [("field", "field")]),
+        (brain, dropout, [("out_file", "brain_mask")]),
         (dropout, first_mask, [("mask", "inlist")]),
-        (to_grid, qc, [("field", "field"), ("mask", "brain_mask"),
+        (brain, qc, [("out_file", "brain_mask")]),
+        (brain, outputnode, [("out_file", "brain_mask")]),
+        (to_grid, qc, [("field", "field"),
                        ("registration_quality", "registration_quality")]),
         (to_disp, qc, [("displacement", "displacement"), ("pe_direction", "pe_direction")]),
         (first_mask, qc, [("out", "dropout_mask")]),

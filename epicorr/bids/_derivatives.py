@@ -12,6 +12,7 @@ output             file name                                        per echo   u
 ``uncertainty``    ``<ent>_desc-fielduncertainty_map.nii.gz``       no         Hz
 ``dropout``        ``<ent>_desc-dropout_mask.nii.gz``               yes        (0/1)
 ``retained``       ``<ent>_desc-retainedsignal_map.nii.gz``         yes        fraction
+``brain``          ``<ent>_desc-brain_mask.nii.gz``                 no         (0/1)
 =================  ===============================================  =========  ==========
 
 Each has a JSON sidecar beside it (``Sources``, ``Units`` and the parameters
@@ -57,6 +58,7 @@ OUTPUTS: dict[str, OutputSpec] = {
     "uncertainty": OutputSpec("fielduncertainty", "map", False, "Hz"),
     "dropout": OutputSpec("dropout", "mask", True, None),
     "retained": OutputSpec("retainedsignal", "map", True, "fraction"),
+    "brain": OutputSpec("brain", "mask", False, None),
 }
 
 

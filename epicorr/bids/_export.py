@@ -90,6 +90,12 @@ def export_target(out_dir: str | os.PathLike, ds: BidsDataset, item: PlanItem,
     out["uncertainty"] = write("uncertainty", results["sigma"], sources=field_sources + [ref_uri],
                                parameters=common,
                                extra={"Description": "standard deviation of the field map"})
+    if results.get("brain_mask"):
+        out["brain"] = write("brain", results["brain_mask"], sources=[bids_uri(target.first)],
+                             parameters=common,
+                             extra={"Description": "brain mask of the first corrected series inside "
+                                                   "the field's measurement mask; the in-brain QC "
+                                                   "figures and dropout volumes use it"})
     disp_info = dict(results.get("displacement_info") or {})
     out["displacement"] = write(
         "displacement", results["displacement"], sources=[field_uri, bids_uri(target.first)],

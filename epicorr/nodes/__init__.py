@@ -17,6 +17,7 @@ node                      core function
 :class:`UnwarpSeries`     :func:`epicorr.unwarp.unwarp`
 :class:`PredictDropout`   :func:`epicorr.dropout.predict_retained_signal`
 :class:`QCMetrics`        :func:`epicorr.qcmetrics.target_metrics`
+:class:`EpiBrainMask`     :func:`epicorr.brainmask.epi_brain_mask`
 :class:`SubjectReport`    :func:`epicorr.report` (one page per subject)
 ========================  ============================================================
 """
@@ -24,9 +25,9 @@ node                      core function
 from .displacement import FieldToDisplacement, UnwarpSeries
 from .dropout import PredictDropout
 from .field import FieldToTargetGrid, HzMapField, PairField, PhaseDiffField, TwoPhaseField
-from .qc import QCMetrics
+from .qc import EpiBrainMask, QCMetrics
 
 __all__ = [
     "PhaseDiffField", "TwoPhaseField", "HzMapField", "PairField", "FieldToTargetGrid",
-    "FieldToDisplacement", "UnwarpSeries", "PredictDropout", "QCMetrics",
+    "FieldToDisplacement", "UnwarpSeries", "PredictDropout", "QCMetrics", "EpiBrainMask",
 ]

@@ -9,9 +9,9 @@ import numpy as np
 from nipype.interfaces.base import (BaseInterfaceInputSpec, File, SimpleInterface, TraitedSpec,
                                     traits)
 
-from ._base import out_path
+from ._base import out_path, save_like
 
-__all__ = ["QCMetrics"]
+__all__ = ["QCMetrics", "EpiBrainMask"]
 
 
 class _QCMetricsInputSpec(BaseInterfaceInputSpec):
@@ -81,4 +81,50 @@ class QCMetrics(SimpleInterface):
         save_json_atomic(rows, path)
         self._results["out_file"] = path
         self._results["worst"] = worst_status([m.status for m in metrics])
+        return runtime
+
+
+class _EpiBrainMaskInputSpec(BaseInterfaceInputSpec):
+    in_file = File(exists=True, mandatory=True,
+                   desc="corrected EPI series or volume (3-D or 4-D NIfTI); its first volume is used")
+    measurement_mask = File(exists=True, desc="where the field was measured, same grid (3-D NIfTI, "
+                                              "nonzero = measured); the brain mask is kept inside it")
+    erosion = traits.Int(2, usedefault=True, desc="voxels of erosion that cut the scalp off (>= 1)")
+
+
+class _EpiBrainMaskOutputSpec(TraitedSpec):
+    out_file = File(exists=True, desc="brain mask (3-D NIfTI, uint8 0/1) on the series' grid")
+    n_voxels = traits.Int(desc="voxels in the mask")
+
+
+class EpiBrainMask(SimpleInterface):
+    """Brain mask of a corrected EPI for the in-brain statistics (:func:`epicorr.brainmask.epi_brain_mask`).
+
+    The same rule for every route, so dropout volumes and QC figures compare across routes.
+    """
+
+    input_spec = _EpiBrainMaskInputSpec
+    output_spec = _EpiBrainMaskOutputSpec
+
+    def _run_interface(self, runtime):
+        from nipype.interfaces.base import isdefined
+
+        from ..brainmask import epi_brain_mask
+        from ..io import load_image
+
+        img = load_image(self.inputs.in_file, allowed_ndim=(3, 4), name="corrected EPI series")
+        data = img.dataobj[..., 0] if len(img.shape) == 4 else img.dataobj
+        brain = epi_brain_mask(np.asanyarray(data, dtype=np.float64), erosion=int(self.inputs.erosion))
+        if isdefined(self.inputs.measurement_mask):
+            measured = np.asanyarray(load_image(self.inputs.measurement_mask, allowed_ndim=(3,),
+                                                name="measurement mask").dataobj) > 0
+            if measured.shape != brain.shape:
+                from ..errors import EpicorrInputError
+                raise EpicorrInputError("is not on the series' grid", file=self.inputs.measurement_mask,
+                                        value=measured.shape, hint="resample it onto the target first")
+            brain &= measured
+        ref3 = img.slicer[..., 0] if len(img.shape) == 4 else img
+        self._results["out_file"] = save_like(brain.astype(np.uint8), ref3, runtime, "brain_mask.nii.gz",
+                                              dtype=np.uint8)
+        self._results["n_voxels"] = int(brain.sum())
         return runtime
