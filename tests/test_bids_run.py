@@ -15,6 +15,7 @@ import json
 import shutil
 from pathlib import Path
 
+import numpy as np
 import nibabel as nib
 import pytest
 
@@ -66,6 +67,13 @@ def test_pybids_indexes_the_outputs_as_a_derivatives_dataset(finished_run):
     assert deriv.get(subject="04", suffix="dwi", extension=".bval"), "bval kept beside the output"
     masks = deriv.get(desc="dropout", suffix="mask", extension=".nii.gz")
     assert len(masks) >= 4
+    # One brain mask per target (BIDS derivatives: desc-brain_mask), inside the brain's bounds: a
+    # strict subset of the head (the measurement mask covers scalp too), never empty.
+    brains = deriv.get(desc="brain", suffix="mask", extension=".nii.gz")
+    assert len(brains) >= 4
+    for b in brains:
+        n = int(np.count_nonzero(np.asanyarray(nib.load(b.path).dataobj)))
+        assert 0 < n < np.prod(nib.load(b.path).shape) // 2, (b.path, n)
     # Sources point back at the raw input (BIDS derivatives: "Sources").
     side = json.loads(Path(unwarped[0].path.replace(".nii.gz", ".json")).read_text())
     assert side["Sources"], side

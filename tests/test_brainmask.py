@@ -39,3 +39,33 @@ def test_bad_volumes_are_refused():
         epi_brain_mask(np.zeros((8, 8, 8)))
     with pytest.raises(EpicorrInputError, match="erosion"):
         epi_brain_mask(np.random.default_rng(0).random((8, 8, 8)), erosion=0)
+
+
+def test_node_uses_the_first_volume_and_stays_inside_the_measurement_mask(tmp_path):
+    """Node contract (nipype SimpleInterface): a 4-D series in, a uint8 mask out in the node folder."""
+    import nibabel as nib
+
+    from epicorr.nodes import EpiBrainMask
+
+    shape = (48, 56, 40)
+    aff = default_affine(shape, 3.5)
+    head = synthetic_head(shape=shape, affine=aff, seed=1)
+    img = simulate_epi(head, np.zeros(shape), pe="j", effective_echo_spacing=5e-4, echo_time=0.03, snr=40,
+                       seed=1)
+    series = np.stack([img, np.zeros(shape)], axis=-1)   # 2nd volume empty: only the 1st may be used
+    nib.save(nib.Nifti1Image(series.astype(np.float32), aff), tmp_path / "bold.nii.gz")
+    measured = np.zeros(shape, np.uint8)
+    measured[:, : shape[1] // 2] = 1                      # half the volume measured
+    nib.save(nib.Nifti1Image(measured, aff), tmp_path / "measured.nii.gz")
+    work = tmp_path / "node"
+    work.mkdir()
+    res = EpiBrainMask(in_file=str(tmp_path / "bold.nii.gz"),
+                       measurement_mask=str(tmp_path / "measured.nii.gz")).run(cwd=str(work))
+    out = nib.load(res.outputs.out_file)
+    mask = np.asanyarray(out.dataobj)
+    assert out.get_data_dtype() == np.uint8 and out.shape == shape
+    assert res.outputs.out_file.startswith(str(work))
+    assert np.allclose(out.affine, aff)
+    assert mask[:, shape[1] // 2:].sum() == 0                           # inside the measurement mask
+    whole = epi_brain_mask(img)
+    assert mask.sum() == res.outputs.n_voxels == np.sum(whole & (measured > 0)) > 0
