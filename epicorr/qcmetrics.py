@@ -456,6 +456,7 @@ def target_metrics(*, field_hz: np.ndarray, displacement_vox: np.ndarray,
                    dropout_mask: np.ndarray | None = None,
                    pair_before: tuple[np.ndarray, np.ndarray] | None = None,
                    pair_after: tuple[np.ndarray, np.ndarray] | None = None,
+                   pair_agreement: tuple[float, float] | None = None,
                    registration_quality: float | None = None,
                    runtime_s: float | None = None) -> list[Metric]:
     """Every QC metric of one target, with status and explanation.
@@ -478,6 +479,11 @@ def target_metrics(*, field_hz: np.ndarray, displacement_vox: np.ndarray,
         Predicted signal dropout.
     pair_before, pair_after : (ndarray, ndarray), optional
         The two opposite-PE images before and after correction (reversed-PE data).
+    pair_agreement : (float, float), optional
+        Reversed-PE data on another grid than the target: the correlation
+        of the two polarities before and after correction as the estimator
+        measured it on the pair's own grid and mask.  Used when
+        ``pair_after`` is not given.
     registration_quality : float, optional
         Similarity 0-1 of the moved field-map magnitude with the EPI.
     runtime_s : float, optional
@@ -528,13 +534,18 @@ def target_metrics(*, field_hz: np.ndarray, displacement_vox: np.ndarray,
                            detail=f"{100.0 * vol * 1000.0 / (n_brain * vs[0] * vs[1] * vs[2]):.2f} "
                                   "% of the brain volume"))
 
+    where = ""
     if pair_after is not None:
         after = brain_correlation(pair_after[0], pair_after[1], mask=mask)
         before = (brain_correlation(pair_before[0], pair_before[1], mask=mask)
                   if pair_before is not None else float("nan"))
+    elif pair_agreement is not None:
+        before, after = (float(v) for v in pair_agreement)
+        where = "; measured on the pair's own grid, inside its head mask"
+    if pair_after is not None or pair_agreement is not None:
         out.append(_metric("pair_corr_after", "Pair agreement after", after, "",
-                           detail=f"before correction: {before:.3f}"))
-        if pair_before is not None:
+                           detail=f"before correction: {before:.3f}{where}"))
+        if math.isfinite(before):
             out.append(_metric("pair_corr_gain", "Pair agreement gain", after - before, "",
                                detail=f"{before:.3f} → {after:.3f}"))
 

@@ -188,3 +188,24 @@ def test_metric_round_trips_through_json_rows():
     rows[0]["value"] = None
     m = type(ms[0]).from_dict(rows[0])
     assert math.isnan(m.value) and m.display_value == "n/a"
+
+
+def test_pair_agreement_measured_on_the_pair_grid_is_reported_for_another_target():
+    """A BOLD corrected with a pair's field: the estimator's own before/after agreement is shown,
+    with its status from the same thresholds as the images' correlation (pure pass-through)."""
+    shape = (8, 10, 6)
+    zero = np.zeros(shape)
+    out = {m.key: m for m in target_metrics(field_hz=zero, displacement_vox=zero, brain_mask=None,
+                                            voxel_size_mm=(2, 2, 2), pe_axis=1,
+                                            pair_agreement=(0.42, 0.95))}
+    assert out["pair_corr_after"].value == pytest.approx(0.95)
+    assert out["pair_corr_gain"].value == pytest.approx(0.53)
+    assert "pair's own grid" in out["pair_corr_after"].detail
+    ref = {m.key: m for m in target_metrics(field_hz=zero, displacement_vox=zero, brain_mask=None,
+                                            voxel_size_mm=(2, 2, 2), pe_axis=1,
+                                            pair_before=(zero + np.arange(10.0)[None, :, None],
+                                                         -np.arange(10.0)[None, :, None] + zero),
+                                            pair_after=(zero + np.arange(10.0)[None, :, None],
+                                                        zero + np.arange(10.0)[None, :, None]))}
+    assert ref["pair_corr_after"].value == pytest.approx(1.0)
+    assert ref["pair_corr_gain"].value == pytest.approx(2.0)

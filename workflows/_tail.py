@@ -17,6 +17,8 @@ TAIL_INPUTS: dict[str, str] = {
     "sigma": "its standard deviation, Hz, same grid",
     "mask": "where it was measured (0/1), same grid",
     "magnitude": "image on the field map's grid registered to the target",
+    "field_info": "the field estimator's details (dict; a reversed-PE pair's agreement before and "
+                  "after is reported by QC)",
     "reference": "the target's reference series or volume (sbref, or the first echo); first "
                  "volume used; defines the grid",
     "metadata": "the target's BIDS sidecar (dict; inheritance applied)",
@@ -99,6 +101,7 @@ def build_tail_workflow(name: str = "tail", *, interpolation: Interpolation | st
         (brain, dropout, [("out_file", "brain_mask")]),
         (dropout, first_mask, [("mask", "inlist")]),
         (brain, qc, [("out_file", "brain_mask")]),
+        (inputnode, qc, [("field_info", "field_info")]),
         (brain, outputnode, [("out_file", "brain_mask")]),
         (to_grid, qc, [("field", "field"),
                        ("registration_quality", "registration_quality")]),

@@ -95,7 +95,8 @@ def build_subject_workflow(ds: BidsDataset, plan: SubjectPlan, *, name: str | No
         for field, value in values.items():
             setattr(tail.inputs.inputnode, field, value)
         wf.connect([(routes[key], tail, [(f"outputnode.{_NATIVE[k]}", f"inputnode.{k}")
-                                         for k in ("field", "sigma", "mask", "magnitude")])])
+                                         for k in ("field", "sigma", "mask", "magnitude")]
+                     + [(f"outputnode.{_NATIVE['info']}", "inputnode.field_info")])])
         outputs[item.target.name] = f"{label}.outputnode"
     return wf, outputs
 

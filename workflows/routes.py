@@ -59,9 +59,10 @@ def _assemble(name: str, kind: FieldSourceKind, estimator: pe.Node, wiring: list
     tail = build_tail_workflow(**tail_options)
     wf.connect([(inputnode, estimator, wiring)])
     wf.connect([
-        (estimator, tail, [(k, f"inputnode.{k}") for k in ("field", "sigma", "mask", "magnitude")]),
+        (estimator, tail, [(k, f"inputnode.{k}") for k in ("field", "sigma", "mask", "magnitude")]
+         + [("info", "inputnode.field_info")]),
         (inputnode, tail, [(k, f"inputnode.{k}") for k in TAIL_INPUTS
-                           if k not in ("field", "sigma", "mask", "magnitude")]),
+                           if k not in ("field", "sigma", "mask", "magnitude", "field_info")]),
         (tail, outputnode, [(f"outputnode.{k}", k) for k in TAIL_OUTPUTS]),
         (estimator, outputnode, list(_NATIVE.items())),
     ])

@@ -28,6 +28,10 @@ class _QCMetricsInputSpec(BaseInterfaceInputSpec):
                                    "correction, on the target grid")
     pair_after = traits.List(File(exists=True), maxlen=2, minlen=2,
                              desc="reversed-PE data: the two images after correction")
+    field_info = traits.Dict(desc="the field estimator's details; for a reversed-PE pair its "
+                                  "agreement_before / agreement_after (correlation of the two "
+                                  "polarities on the pair's grid) are reported when pair_after "
+                                  "is not given")
     registration_quality = traits.Float(desc="similarity 0-1 of the moved field-map magnitude "
                                              "with the EPI reference")
     runtime_s = traits.Float(desc="processing time of the target so far, s")
@@ -63,6 +67,12 @@ class QCMetrics(SimpleInterface):
             kwargs["pair_before"] = tuple(vol(p, "pair image") for p in self.inputs.pair_before)
         if isdefined(self.inputs.pair_after):
             kwargs["pair_after"] = tuple(vol(p, "pair image") for p in self.inputs.pair_after)
+        if not isdefined(self.inputs.pair_after) and isdefined(self.inputs.field_info):
+            info = self.inputs.field_info
+            if info.get("agreement_after") is not None:
+                before = info.get("agreement_before")
+                kwargs["pair_agreement"] = (float("nan") if before is None else float(before),
+                                            float(info["agreement_after"]))
         if isdefined(self.inputs.registration_quality):
             kwargs["registration_quality"] = float(self.inputs.registration_quality)
         if isdefined(self.inputs.runtime_s):
