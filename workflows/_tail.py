@@ -5,8 +5,8 @@ from __future__ import annotations
 from nipype.interfaces.utility import IdentityInterface, Select
 from nipype.pipeline import engine as pe
 
-from epicorr.nodes import (EpiBrainMask, FieldToDisplacement, FieldToTargetGrid, PredictDropout, QCMetrics,
-                           UnwarpSeries)
+from epicorr.nodes import (EpiBrainMask, FieldToDisplacement, FieldToTargetGrid, PredictDropout,
+                           QCMetrics, UnwarpSeries)
 from epicorr.options import Interpolation, parse_option
 
 __all__ = ["TAIL_INPUTS", "TAIL_OUTPUTS", "build_tail_workflow"]

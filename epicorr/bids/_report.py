@@ -63,7 +63,8 @@ def _target_report(item, results: Mapping[str, Any], written: Mapping[str, Any])
         pe=pe, voxel_size_mm=[float(z) for z in ref_img.header.get_zooms()[:3]],
         reference_before=np.asanyarray(ref_img.dataobj, dtype=np.float64), reference_after=after,
         field_hz=_vol(written["field"]), displacement_vox=_vol(written["displacement"]),
-        metrics=metrics, brain_mask=_vol(written.get("brain") or results["mask"]) > 0, affine=ref_img.affine,
+        metrics=metrics, brain_mask=_vol(written.get("brain") or results["mask"]) > 0,
+        affine=ref_img.affine,
         dropout_mask=_vol(written["dropout"][0]) > 0, retained_signal=_vol(written["retained"][0]),
         uncertainty=_vol(written["uncertainty"]), acquisition=acq,
         notes=[f"field source linked by {item.link}"])

@@ -108,7 +108,7 @@ class _EpiBrainMaskOutputSpec(TraitedSpec):
 
 
 class EpiBrainMask(SimpleInterface):
-    """Brain mask of a corrected EPI for the in-brain statistics (:func:`epicorr.brainmask.epi_brain_mask`).
+    """Brain mask of a corrected EPI for in-brain statistics (:func:`epicorr.brainmask.epi_brain_mask`).
 
     The same rule for every route, so dropout volumes and QC figures compare across routes.
     """
@@ -130,11 +130,12 @@ class EpiBrainMask(SimpleInterface):
                                                 name="measurement mask").dataobj) > 0
             if measured.shape != brain.shape:
                 from ..errors import EpicorrInputError
-                raise EpicorrInputError("is not on the series' grid", file=self.inputs.measurement_mask,
-                                        value=measured.shape, hint="resample it onto the target first")
+                raise EpicorrInputError("is not on the series' grid",
+                                        file=self.inputs.measurement_mask, value=measured.shape,
+                                        hint="resample it onto the target first")
             brain &= measured
         ref3 = img.slicer[..., 0] if len(img.shape) == 4 else img
-        self._results["out_file"] = save_like(brain.astype(np.uint8), ref3, runtime, "brain_mask.nii.gz",
-                                              dtype=np.uint8)
+        self._results["out_file"] = save_like(brain.astype(np.uint8), ref3, runtime,
+                                              "brain_mask.nii.gz", dtype=np.uint8)
         self._results["n_voxels"] = int(brain.sum())
         return runtime
