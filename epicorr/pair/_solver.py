@@ -78,10 +78,11 @@ class LevelProblem:
     coefs: list
     weights: list
     axis_weights: tuple = (1.0, 1.0, 1.0)
+    upsample: int = 1
     info: dict = field(default_factory=dict)
 
     def __post_init__(self):
-        self.samplers = [M.LineSampler(img) for img in self.images]
+        self.samplers = [M.LineSampler(img, upsample=self.upsample) for img in self.images]
 
 
 def _dot(a, b):
