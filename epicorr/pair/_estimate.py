@@ -28,8 +28,8 @@ DEFAULT_BARRIER = 0.1
 #: low-passes by an amount that depends on the sub-voxel shift (at half a voxel
 #: it cancels the Nyquist component), which lets the fit trade field accuracy for
 #: smoothing away Gibbs ringing.  Default 1 (plain cubic) until the accuracy
-#: work on the reversed-PE route settles the trade-off; 4 is the value measured
-#: on the simulator (common practice).
+#: work on the reversed-PE route settles the trade-off; 4 gave the lowest field
+#: error of 1-4 on the package simulator.
 DEFAULT_UPSAMPLE = 1
 #: Smallest size of an axis that is still halved in the pyramid.
 _MIN_HALVE = 16

@@ -177,6 +177,9 @@ def interp_pe(img: np.ndarray, shift: np.ndarray, *, with_derivative: bool = Tru
         Displacement along PE, voxels.
     with_derivative : bool
         Also return the derivative of the interpolant along PE (per voxel).
+    upsample : int
+        When above 1, each line is first DFT-interpolated onto a grid this many
+        times finer (:func:`band_limited_upsample`), then sampled by cubic convolution.
 
     Returns
     -------
@@ -281,6 +284,6 @@ def unwarp(img: np.ndarray, d: np.ndarray, *, upsample: int = 1) -> np.ndarray:
     """Unwarp one image given its displacement ``d`` (voxels, PE axis first).
 
     Returns ``I(y + d(y)) * (1 + d'(y))``, the Jacobian-modulated unwarped
-    image of Chang & Fitzpatrick (1992).
+    image of Chang & Fitzpatrick (1992); ``upsample`` as in :func:`interp_pe`.
     """
     return interp_pe(img, d, with_derivative=False, upsample=upsample) * (1.0 + derivative_pe(d))
