@@ -253,6 +253,18 @@ def test_same_polarity_rejected():
     assert "PhaseEncodingDirection" in str(err.value)
 
 
+@pytest.mark.parametrize("key,value", [("upsample", 0), ("upsample", 2.5), ("upsample", 64),
+                                       ("regularization", -1.0), ("regularization", float("nan")),
+                                       ("barrier", -0.1), ("levels", 0), ("iterations", (5,)),
+                                       ("iterations", (5, 0)), ("motion_iterations", -1)])
+def test_bad_solver_options_rejected_before_any_work(key, value):
+    # The option is named with its bad value in the one-line message (package error contract).
+    with pytest.raises(EpicorrInputError, match=key) as err:
+        estimate_field_from_pair(_two(), pe_directions=["j", "j-"], voxels_per_hz=VPH, affine=AFF,
+                                 **{key: value})
+    assert repr(value) in str(err.value)
+
+
 @pytest.mark.parametrize("fill,word", [(np.nan, "NaN"), (0.0, "all zero")])
 def test_empty_volumes_rejected_with_file_name(fill, word):
     imgs = _two()

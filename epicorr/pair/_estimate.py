@@ -8,6 +8,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import ndimage
 
+from ..errors import EpicorrInputError
 from . import _combine, _model, _rigid
 from ._inputs import prepare_inputs
 from ._solver import LevelProblem, downsample, solve_level, upsample_to
@@ -119,6 +120,47 @@ def _pyramid(vol, plans):
     return out
 
 
+#: Largest accepted band-limited interpolation factor (memory grows with it).
+_MAX_UPSAMPLE = 16
+
+
+def _whole(value, *, key, low, high=None):
+    ok = isinstance(value, (int, np.integer)) and not isinstance(value, bool)
+    if not ok or value < low or (high is not None and value > high):
+        span = f"from {low} to {high}" if high is not None else f"of at least {low}"
+        raise EpicorrInputError(f"must be a whole number {span}", key=key, value=value)
+    return int(value)
+
+
+def _real(value, *, key, positive):
+    try:
+        x = float(value)
+    except (TypeError, ValueError):
+        x = float("nan")
+    if isinstance(value, bool) or not np.isfinite(x) or (x <= 0 if positive else x < 0):
+        raise EpicorrInputError("must be a finite number " + ("> 0" if positive else ">= 0"),
+                                key=key, value=value)
+    return x
+
+
+def _check_solver_options(regularization, barrier, levels, iterations, motion_iterations, upsample):
+    """Validate the numeric options of :func:`estimate_field_from_pair` (one place)."""
+    try:
+        its = tuple(iterations)
+    except TypeError:
+        its = ()
+    if len(its) != 2 or not all(isinstance(i, (int, np.integer)) and not isinstance(i, bool) and i >= 1
+                                for i in its):
+        raise EpicorrInputError("must be two whole numbers >= 1 (finest level, other levels)",
+                                key="iterations", value=iterations)
+    return dict(regularization=_real(regularization, key="regularization", positive=True),
+                barrier=_real(barrier, key="barrier", positive=False),
+                levels=_whole(levels, key="levels", low=1),
+                iterations=tuple(int(i) for i in its),
+                motion_iterations=_whole(motion_iterations, key="motion_iterations", low=0),
+                upsample=_whole(upsample, key="upsample", low=1, high=_MAX_UPSAMPLE))
+
+
 def estimate_field_from_pair(images, *, pe_directions, voxels_per_hz, affine, mask=None,
                              files=None, regularization=DEFAULT_REGULARIZATION,
                              barrier=DEFAULT_BARRIER, levels=5, iterations=(5, 15),
@@ -183,7 +225,11 @@ def estimate_field_from_pair(images, *, pe_directions, voxels_per_hz, affine, ma
     Raises
     ------
     EpicorrInputError
-        See :func:`epicorr.pair._inputs.prepare_inputs`.
+        See :func:`epicorr.pair._inputs.prepare_inputs`; also when a numeric
+        option is out of range (``regularization`` > 0, ``barrier`` >= 0,
+        whole ``levels`` >= 1, ``iterations`` two whole numbers >= 1, whole
+        ``motion_iterations`` >= 0, whole ``upsample`` from 1 to 16), checked
+        before any work.
 
     References
     ----------
@@ -191,6 +237,9 @@ def estimate_field_from_pair(images, *, pe_directions, voxels_per_hz, affine, ma
     Ruthotto L et al. Phys Med Biol 2012;57:5715-5731.
     Macdonald J, Ruthotto L. J Math Imaging Vis 2018;60:268-282.
     """
+    opts = _check_solver_options(regularization, barrier, levels, iterations, motion_iterations, upsample)
+    regularization, barrier, levels = opts["regularization"], opts["barrier"], opts["levels"]
+    iterations, motion_iterations, upsample = opts["iterations"], opts["motion_iterations"], opts["upsample"]
     t_start = time.perf_counter()
     inp = prepare_inputs(images, pe_directions=pe_directions, voxels_per_hz=voxels_per_hz,
                          affine=affine, mask=mask, files=files)
