@@ -12,7 +12,7 @@ Typical use::
     epi = simulate_epi(head, field, pe="j-", effective_echo_spacing=5e-4, echo_time=0.03)
 """
 
-from ._dipole import dipole_field_hz, dipole_kernel, shim
+from ._dipole import dipole_field_hz, dipole_kernel, shim, signal_side_field
 from ._epi import line_times, simulate_epi, true_retained_signal
 from ._gre import DualEcho, phase_to_integer, resample_to_grid, simulate_dual_echo
 from ._head import LABELS, Head, default_affine, rigid_matrix, synthetic_head
@@ -27,6 +27,7 @@ __all__ = [
     "dipole_kernel",
     "dipole_field_hz",
     "shim",
+    "signal_side_field",
     "simulate_epi",
     "true_retained_signal",
     "line_times",

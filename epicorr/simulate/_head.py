@@ -202,6 +202,9 @@ class Head:
         Intrinsic T2* in s.
     proton_density : float ndarray
         Relative proton density.
+    tissue_fraction : float ndarray
+        Fraction of each voxel not in air (any class but those of ``AIR_LABELS``),
+        0..1 (partial-volume average); see :func:`epicorr.simulate.signal_side_field`.
     pose : (4, 4) ndarray
         Head -> world rigid transform used to sample the analytic head.
     seed : int
@@ -216,6 +219,7 @@ class Head:
     gre_magnitude: np.ndarray
     t2star_s: np.ndarray
     proton_density: np.ndarray
+    tissue_fraction: np.ndarray
     pose: np.ndarray = field(default_factory=lambda: np.eye(4))
     seed: int = 0
     supersample: int = 2
@@ -273,7 +277,8 @@ def _evaluate(*, shape, affine, pose, seed, supersample) -> Head:
     t2s = np.where(w.sum(-1) > 0, 1 / np.maximum(r2s, 1e-12), T2STAR_S[0])
     return Head(affine=np.array(affine, float), labels=labels, chi_ppm=prop(CHI_PPM),
                 brain_mask=mask, epi_contrast=epi, gre_magnitude=gre, t2star_s=t2s,
-                proton_density=pd, pose=np.array(pose, float), seed=int(seed), supersample=ss)
+                proton_density=pd, tissue_fraction=1.0 - frac[..., list(AIR_LABELS)].sum(-1),
+                pose=np.array(pose, float), seed=int(seed), supersample=ss)
 
 
 def synthetic_head(*, shape=(64, 64, 48), voxel_size_mm=3.0, affine=None, seed=0,
