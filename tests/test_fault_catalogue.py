@@ -19,6 +19,7 @@ from pathlib import Path
 import nibabel as nib
 import numpy as np
 import pytest
+from scipy import ndimage
 
 from epicorr.cli import main
 
@@ -284,6 +285,30 @@ def test_26_pair_count_mismatch(case, capsys):
     _check(["pair-field", src / "ap.nii.gz", src / "pa.nii.gz", "--pe-directions", "j",
             "--echo-spacing", EES, "--out", out / "field.nii.gz"], src, out, capsys,
            names=("--pe-directions",))
+
+
+def test_good_pair_works(case, capsys):
+    """Control for the pair cases: the same pair succeeds, with the edge-preserving option on."""
+    src, out = case
+    argv = ["pair-field", src / "ap.nii.gz", src / "pa.nii.gz", "--pe-directions", "j", "j-",
+            "--echo-spacing", EES, "--edge-scale", "0.3", "--out", out / "field.nii.gz",
+            "--out-corrected", out / "ref.nii.gz"]
+    assert main([str(a) for a in argv]) == 0
+    field = np.asarray(nib.load(str(out / "field.nii.gz")).dataobj)
+    assert field.shape == SHAPE and (out / "ref.nii.gz").is_file()
+    # pa is ap moved one voxel towards +j: d(j-) - d(j) = -2 f v = 1 voxel, so f = -1 / (2 v),
+    # v = 0.5 ms x 20 lines (BIDS displacement convention): -50 Hz inside the head.
+    image, _ = _phantom()
+    inner = ndimage.binary_erosion(image > 0, iterations=2)
+    assert np.median(field[inner]) == pytest.approx(-50.0, abs=5.0)
+
+
+@pytest.mark.parametrize("value", ["0", "-0.3", "nan"])
+def test_26b_pair_bad_edge_scale(case, capsys, value):
+    src, out = case
+    _check(["pair-field", src / "ap.nii.gz", src / "pa.nii.gz", "--pe-directions", "j", "j-",
+            "--echo-spacing", EES, "--edge-scale", value, "--out", out / "field.nii.gz"], src, out, capsys,
+           names=("edge_scale",))
 
 
 def test_27_equal_echo_times(case, capsys):

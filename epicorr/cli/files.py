@@ -57,6 +57,10 @@ def register(subparsers) -> None:
     _readout(p)
     p.add_argument("--out", required=True, metavar="NIFTI", help="output field map (Hz)")
     p.add_argument("--out-corrected", metavar="NIFTI", help="also write the corrected reference image")
+    p.add_argument("--edge-scale", type=float, metavar="VOXELS",
+                   help="edge-preserving smoothness: field step between neighbours, in voxels of "
+                        "displacement per voxel, above which smoothing is relaxed (e.g. 0.3; default "
+                        "off, plain quadratic smoothness)")
     p.set_defaults(func=_pair_field)
 
     p = subparsers.add_parser(
@@ -190,6 +194,8 @@ def _pair_field(args) -> int:
             raise EpicorrInputError("file not found", file=path)
     node = PairField(in_files=list(args.images), metadata=[_meta(args, pe) for pe in args.pe_directions],
                      metadata_files=[f"--pe-directions ({p})" for p in args.images])
+    if args.edge_scale is not None:
+        node.inputs.edge_scale = args.edge_scale
     _run_node(node, {"field": str(out), "magnitude": str(corrected) if corrected else None})
     print(f"wrote {out} (field in Hz)")
     return 0

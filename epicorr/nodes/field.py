@@ -167,6 +167,8 @@ class _PairInputSpec(BaseInterfaceInputSpec):
                                 "or TotalReadoutTime)")
     metadata_files = traits.List(traits.Str, desc="sidecar path of each image, for messages")
     regularization = traits.Float(desc="smoothness weight factor (default: the estimator's own)")
+    edge_scale = traits.Float(desc="edge-preserving smoothness scale, voxels of displacement per PE "
+                                   "voxel (default: off, quadratic smoothness)")
 
 
 class PairField(SimpleInterface):
@@ -200,6 +202,8 @@ class PairField(SimpleInterface):
         kwargs = {}
         if isdefined(self.inputs.regularization):
             kwargs["regularization"] = float(self.inputs.regularization)
+        if isdefined(self.inputs.edge_scale):
+            kwargs["edge_scale"] = float(self.inputs.edge_scale)
         est = estimate_field_from_pair(data, pe_directions=pes, voxels_per_hz=vph,
                                        affine=[i.affine for i in imgs], files=names, **kwargs)
         _write_estimate(est, imgs[0].slicer[..., 0] if len(imgs[0].shape) == 4 else imgs[0],

@@ -11,10 +11,10 @@ from scipy import ndimage
 from ..errors import EpicorrInputError
 from . import _combine, _model, _rigid
 from ._inputs import prepare_inputs
-from ._solver import LevelProblem, downsample, solve_level, upsample_to
+from ._solver import LevelProblem, charbonnier_weights, downsample, solve_level, upsample_to
 
 __all__ = ["PairEstimate", "estimate_field_from_pair", "DEFAULT_REGULARIZATION", "DEFAULT_BARRIER",
-           "DEFAULT_UPSAMPLE"]
+           "DEFAULT_UPSAMPLE", "DEFAULT_EDGE_PASSES"]
 
 #: Dimensionless smoothness constant ``lam`` of the automatic rule
 #: ``alpha = lam * trace(J^T J) / trace(L)`` (common practice: tuned on
@@ -32,6 +32,9 @@ DEFAULT_BARRIER = 0.1
 #: work on the reversed-PE route settles the trade-off; 4 gave the lowest field
 #: error of 1-4 on the package simulator.
 DEFAULT_UPSAMPLE = 1
+#: Reweighting passes of the optional edge-preserving smoothness (common practice:
+#: on the package simulator one pass and two differed by 0.02-0.2 Hz of field error).
+DEFAULT_EDGE_PASSES = 2
 #: Smallest size of an axis that is still halved in the pyramid.
 _MIN_HALVE = 16
 #: Below this largest displacement (mm) a rigid correction is not applied.
@@ -64,8 +67,9 @@ class PairEstimate:
         ``levels`` (per level: shape, alpha, beta, iterations, cg_iterations,
         seconds, min_jacobian), ``regularization`` (alpha per level),
         ``rigid`` (per outer iteration: largest displacement of each moved
-        image, mm), ``agreement_before`` / ``agreement_after`` (correlation of
-        the + and - means inside the mask), ``timings`` (s), ``notes``.
+        image, mm), ``edge_passes`` (reweighting passes run, 0 when off),
+        ``agreement_before`` / ``agreement_after`` (correlation of the + and
+        - means inside the mask), ``timings`` (s), ``notes``.
     """
 
     field_hz: np.ndarray
@@ -143,7 +147,8 @@ def _real(value, *, key, positive):
     return x
 
 
-def _check_solver_options(regularization, barrier, levels, iterations, motion_iterations, upsample):
+def _check_solver_options(regularization, barrier, levels, iterations, motion_iterations, upsample,
+                          edge_scale=None, edge_passes=DEFAULT_EDGE_PASSES):
     """Validate the numeric options of :func:`estimate_field_from_pair` (one place)."""
     try:
         its = tuple(iterations)
@@ -158,14 +163,17 @@ def _check_solver_options(regularization, barrier, levels, iterations, motion_it
                 levels=_whole(levels, key="levels", low=1),
                 iterations=tuple(int(i) for i in its),
                 motion_iterations=_whole(motion_iterations, key="motion_iterations", low=0),
-                upsample=_whole(upsample, key="upsample", low=1, high=_MAX_UPSAMPLE))
+                upsample=_whole(upsample, key="upsample", low=1, high=_MAX_UPSAMPLE),
+                edge_scale=None if edge_scale is None else _real(edge_scale, key="edge_scale", positive=True),
+                edge_passes=_whole(edge_passes, key="edge_passes", low=1))
 
 
 def estimate_field_from_pair(images, *, pe_directions, voxels_per_hz, affine, mask=None,
                              files=None, regularization=DEFAULT_REGULARIZATION,
                              barrier=DEFAULT_BARRIER, levels=5, iterations=(5, 15),
                              rigid=True, motion_iterations=3, combine=True,
-                             upsample=DEFAULT_UPSAMPLE) -> PairEstimate:
+                             upsample=DEFAULT_UPSAMPLE, edge_scale=None,
+                             edge_passes=DEFAULT_EDGE_PASSES) -> PairEstimate:
     """Estimate the B0 field from EPI images with reversed phase-encode polarity.
 
     Solves the reversed-gradient problem of Chang & Fitzpatrick (1992):
@@ -217,6 +225,21 @@ def estimate_field_from_pair(images, *, pe_directions, voxels_per_hz, affine, ma
     upsample : int
         Band-limited interpolation factor along PE (see ``DEFAULT_UPSAMPLE``);
         1 samples the raw grid by cubic convolution.
+    edge_scale : float, optional
+        Edge-preserving smoothness on the finest level (Charbonnier penalty by
+        iteratively reweighted least squares, see :mod:`epicorr.pair._solver`):
+        the scale ``delta`` of the field step between neighbours, in voxels of
+        displacement per PE voxel length (``v_ref * |grad field_hz| * h_pe``).
+        Steps above it are flattened less than by the quadratic smoothness.
+        None (default) keeps the quadratic smoothness.  0.3 is a reasonable
+        start (common practice, from the package simulator, 64x64x48 head at 3 mm:
+        field error 10.5 -> 10.2 Hz noiseless and 10.60 -> 10.58 Hz at SNR
+        30, agreement of the unwarped pair +0.013 to +0.015; smaller values
+        raise the agreement further by fitting noise and intensity mismatch,
+        not the field).
+    edge_passes : int
+        Reweighting passes (each re-solves the finest level) when
+        ``edge_scale`` is given.
 
     Returns
     -------
@@ -228,7 +251,8 @@ def estimate_field_from_pair(images, *, pe_directions, voxels_per_hz, affine, ma
         See :func:`epicorr.pair._inputs.prepare_inputs`; also when a numeric
         option is out of range (``regularization`` > 0, ``barrier`` >= 0,
         whole ``levels`` >= 1, ``iterations`` two whole numbers >= 1, whole
-        ``motion_iterations`` >= 0, whole ``upsample`` from 1 to 16), checked
+        ``motion_iterations`` >= 0, whole ``upsample`` from 1 to 16,
+        ``edge_scale`` None or > 0, whole ``edge_passes`` >= 1), checked
         before any work.
 
     References
@@ -237,9 +261,11 @@ def estimate_field_from_pair(images, *, pe_directions, voxels_per_hz, affine, ma
     Ruthotto L et al. Phys Med Biol 2012;57:5715-5731.
     Macdonald J, Ruthotto L. J Math Imaging Vis 2018;60:268-282.
     """
-    opts = _check_solver_options(regularization, barrier, levels, iterations, motion_iterations, upsample)
+    opts = _check_solver_options(regularization, barrier, levels, iterations, motion_iterations, upsample,
+                                 edge_scale, edge_passes)
     regularization, barrier, levels = opts["regularization"], opts["barrier"], opts["levels"]
     iterations, motion_iterations, upsample = opts["iterations"], opts["motion_iterations"], opts["upsample"]
+    edge_scale, edge_passes = opts["edge_scale"], opts["edge_passes"]
     t_start = time.perf_counter()
     inp = prepare_inputs(images, pe_directions=pe_directions, voxels_per_hz=voxels_per_hz,
                          affine=affine, mask=mask, files=files)
@@ -272,6 +298,8 @@ def estimate_field_from_pair(images, *, pe_directions, voxels_per_hz, affine, ma
     pyramids = [_pyramid(pe_first(v), plans) for v in vols]
     level_info = []
 
+    edge_w = {}
+
     def run_levels(u, lo, hi):
         """Solve levels hi-1 .. lo (coarse to fine); ``u`` is on level hi (or None)."""
         for lev in range(hi - 1, lo - 1, -1):
@@ -284,7 +312,7 @@ def estimate_field_from_pair(images, *, pe_directions, voxels_per_hz, affine, ma
             axis_w = tuple(float((h[0] / h[a]) ** 2) for a in range(3))
             prob = LevelProblem(images=[p[lev] for p in pyramids],
                                 coefs=coefs, weights=weights, axis_weights=axis_w,
-                                upsample=upsample)
+                                upsample=upsample, edge_weights=edge_w.get(lev))
             u, info = solve_level(prob, u, lam=regularization, beta_rel=barrier,
                                   max_iter=iterations[0] if lev == 0 else iterations[1])
             info["level"] = lev
@@ -336,6 +364,11 @@ def estimate_field_from_pair(images, *, pe_directions, voxels_per_hz, affine, ma
     t_coarse = time.perf_counter() - t0
     if coarse_lo == 1:
         u = run_levels(u, 0, 1)
+    for _ in range(edge_passes if edge_scale is not None else 0):
+        # IRLS on the finest level: Charbonnier factors at the current field, then re-solve.
+        aw = tuple(float((spacing_pe[0] / spacing_pe[a]) ** 2) for a in range(3))
+        edge_w[0] = charbonnier_weights(u, axis_weights=aw, scale=edge_scale)
+        u = run_levels(u, 0, 1)
     t_fine = time.perf_counter() - t0 - t_coarse
     final = level_info[-1]
     field_pe = u / v_ref
@@ -365,6 +398,7 @@ def estimate_field_from_pair(images, *, pe_directions, voxels_per_hz, affine, ma
         regularization=[li["alpha"] for li in level_info],
         iterations=sum(li["iterations"] for li in level_info),
         rigid=rigid_log,
+        edge_passes=edge_passes if edge_scale is not None else 0,
         agreement_before=_corr(raw_plus, raw_minus, msk),
         agreement_after=_corr(pe_back(plus), pe_back(minus), msk),
         combine=cinfo,

@@ -21,6 +21,18 @@ barrier + PE smoothness + the diagonal of the cross-line smoothness),
 factorised by a banded LDL^T vectorised over all lines at once (Macdonald &
 Ruthotto 2018 exploit the same separability).
 
+Edge-preserving smoothness (optional)
+-------------------------------------
+``LevelProblem.edge_weights`` multiplies the smoothness of each pair of
+neighbours by a factor ``c_a`` in (0, 1].  :func:`charbonnier_weights` gives
+the factors of one iteratively-reweighted least-squares (IRLS) pass for the
+Charbonnier penalty ``delta^2 (sqrt(1 + (g / delta)^2) - 1)`` of the scaled
+step ``g = sqrt(w_a) |D+_a u|`` (Charbonnier et al. 1997): ``c = 1 / sqrt(1
++ (g / delta)^2)``.  Steps much smaller than ``delta`` are smoothed as
+before; larger ones (the steep field next to air-tissue interfaces) are
+penalised roughly linearly instead of quadratically, so they are flattened
+less.  ``alpha`` keeps the unweighted ``trace(L)`` of the rule below.
+
 Automatic regularisation weight (per level)
 -------------------------------------------
 ``alpha = lam * trace(J^T J) / trace(L)`` at the level's starting point,
@@ -42,6 +54,10 @@ magnetic resonance images. Phys Med Biol 2012;57:5715-5731.
 
 Macdonald J, Ruthotto L. J Math Imaging Vis 2018;60:268-282.
 
+Charbonnier P, Blanc-Feraud L, Aubert G, Barlaud M. Deterministic
+edge-preserving regularization in computed imaging. IEEE Trans Image Process
+1997;6:298-311.
+
 Nocedal J, Wright SJ. Numerical Optimization, 2nd ed. Springer 2006
 (Gauss-Newton, inexact Newton-CG, Armijo backtracking).
 """
@@ -55,7 +71,8 @@ import numpy as np
 
 from . import _model as M
 
-__all__ = ["LevelProblem", "solve_level", "downsample", "upsample_to", "factor_penta", "solve_penta"]
+__all__ = ["LevelProblem", "solve_level", "downsample", "upsample_to", "factor_penta", "solve_penta",
+           "charbonnier_weights"]
 
 
 @dataclass
@@ -72,6 +89,9 @@ class LevelProblem:
         ``+1/n_plus`` or ``-1/n_minus``: the residual is ``sum_k w_k U_k``.
     axis_weights : tuple of 3 float
         ``w_a`` for the axes of the ``(n, a, b)`` array (``w_0 = 1``).
+    edge_weights : tuple of 3 ndarray, optional
+        Per-edge factors ``c_a`` (shape of ``np.diff(u, axis=a)``, values in
+        (0, 1]) multiplying the smoothness of each pair of neighbours; None = 1.
     """
 
     images: list
@@ -79,6 +99,7 @@ class LevelProblem:
     weights: list
     axis_weights: tuple = (1.0, 1.0, 1.0)
     upsample: int = 1
+    edge_weights: tuple | None = None
     info: dict = field(default_factory=dict)
 
     def __post_init__(self):
@@ -149,13 +170,40 @@ def _neighbour_count(n: int) -> np.ndarray:
     return c
 
 
-def _laplacian(u, w):
-    """``sum_a w_a D+_a^T D+_a u`` (graph Laplacian, Neumann ends)."""
+def charbonnier_weights(u, *, axis_weights, scale):
+    """IRLS factors of the Charbonnier smoothness penalty at ``u``.
+
+    Parameters
+    ----------
+    u : ndarray, shape (n, a, b)
+        Field in reference voxels of displacement, PE axis first.
+    axis_weights : tuple of 3 float
+        ``w_a = (h_pe / h_a)^2`` of the level (``w_0 = 1``), so the step
+        ``g = sqrt(w_a) |D+_a u|`` is in voxels of displacement per PE
+        voxel length (a physical gradient, not a per-index one).
+    scale : float
+        ``delta`` > 0 in the same unit: steps below it are smoothed as by the
+        quadratic penalty, larger ones less.
+
+    Returns
+    -------
+    tuple of 3 ndarray
+        ``c_a = 1 / sqrt(1 + (g / delta)^2)``, shape of ``np.diff(u, axis=a)``,
+        values in (0, 1].
+    """
+    return tuple(1.0 / np.sqrt(1.0 + (np.sqrt(axis_weights[a]) * np.abs(np.diff(u, axis=a)) / scale) ** 2)
+                 for a in range(u.ndim))
+
+
+def _laplacian(u, w, c=None):
+    """``sum_a w_a D+_a^T C_a D+_a u`` (weighted graph Laplacian, Neumann ends)."""
     out = np.zeros_like(u)
     for ax in range(u.ndim):
         if u.shape[ax] < 2 or w[ax] == 0:
             continue
         du = np.diff(u, axis=ax)
+        if c is not None:
+            du = du * c[ax]
         sl_lo = [slice(None)] * u.ndim
         sl_hi = [slice(None)] * u.ndim
         sl_lo[ax] = slice(0, -1)
@@ -165,13 +213,13 @@ def _laplacian(u, w):
     return out
 
 
-def _smooth_energy(u, w):
-    return 0.5 * sum(w[ax] * float(np.sum(np.diff(u, axis=ax) ** 2))
+def _smooth_energy(u, w, c=None):
+    return 0.5 * sum(w[ax] * float(np.sum((1.0 if c is None else c[ax]) * np.diff(u, axis=ax) ** 2))
                      for ax in range(u.ndim) if u.shape[ax] > 1)
 
 
-def _cross_neighbours(x, w):
-    """``sum_{a>0} w_a * (sum of the two neighbours along a)`` (zero outside)."""
+def _cross_neighbours(x, w, c=None):
+    """``sum_{a>0} w_a c_a * (sum of the two neighbours along a)`` (zero outside)."""
     out = np.zeros_like(x)
     for ax in range(1, x.ndim):
         if x.shape[ax] < 2 or w[ax] == 0:
@@ -180,14 +228,30 @@ def _cross_neighbours(x, w):
         sl_hi = [slice(None)] * x.ndim
         sl_lo[ax] = slice(0, -1)
         sl_hi[ax] = slice(1, None)
-        out[tuple(sl_lo)] += w[ax] * x[tuple(sl_hi)]
-        out[tuple(sl_hi)] += w[ax] * x[tuple(sl_lo)]
+        wa = w[ax] if c is None else w[ax] * c[ax]
+        out[tuple(sl_lo)] += wa * x[tuple(sl_hi)]
+        out[tuple(sl_hi)] += wa * x[tuple(sl_lo)]
     return out
 
 
-def _smooth_diag_cross(shape, w):
+def _edge_sum(shape, ax, ca):
+    """Per voxel: sum of ``ca`` over its (one or two) edges along ``ax``."""
+    out = np.zeros(shape)
+    sl_lo = [slice(None)] * len(shape)
+    sl_hi = [slice(None)] * len(shape)
+    sl_lo[ax] = slice(0, -1)
+    sl_hi[ax] = slice(1, None)
+    out[tuple(sl_lo)] += ca
+    out[tuple(sl_hi)] += ca
+    return out
+
+
+def _smooth_diag_cross(shape, w, c=None):
     diag = np.zeros(shape)
     for ax in range(1, len(shape)):
+        if c is not None and shape[ax] > 1:
+            diag += w[ax] * _edge_sum(shape, ax, c[ax])
+            continue
         cnt = _neighbour_count(shape[ax])
         bshape = [1] * len(shape)
         bshape[ax] = shape[ax]
@@ -223,7 +287,7 @@ def _evaluate(prob: LevelProblem, u, alpha, beta, *, full: bool):
         bar += float(psi.sum())
         if full:
             bar_terms.append((c, d1, d2))
-    energy = 0.5 * float(np.sum(r * r)) + alpha * _smooth_energy(u, w) + beta * bar
+    energy = 0.5 * float(np.sum(r * r)) + alpha * _smooth_energy(u, w, prob.edge_weights) + beta * bar
     if not full:
         return energy, None
     return energy, dict(r=r, A=A, B=B, bar_terms=bar_terms, min_jac=min_jac)
@@ -240,29 +304,33 @@ def _line_hessian(prob, ev, alpha, beta, shape):
         M.gram_bands(blo, bmid, bup, out=bands, scale=beta)
     h0, h1, h2 = bands
     n = shape[0]
-    if n > 1:
+    c = prob.edge_weights
+    if n > 1 and c is not None:
+        h0 += alpha * w[0] * _edge_sum(shape, 0, c[0])
+        h1[:-1] -= alpha * w[0] * c[0]
+    elif n > 1:
         h0 += alpha * w[0] * _neighbour_count(n).reshape((n,) + (1,) * (len(shape) - 1))
         h1[:-1] -= alpha * w[0]
-    h0 += alpha * _smooth_diag_cross(shape, w)
+    h0 += alpha * _smooth_diag_cross(shape, w, c)
     return (lo, mid, up), bands, data_trace
 
 
 def _gradient(prob, ev, jb, u, alpha, beta):
     g = M.apply_bands_T(*jb, ev["r"])
-    g += alpha * _laplacian(u, prob.axis_weights)
+    g += alpha * _laplacian(u, prob.axis_weights, prob.edge_weights)
     for c, d1, _d2 in ev["bar_terms"]:
         blo, bmid, bup = M.jacobian_bands(None, np.full_like(u, c))
         g += beta * M.apply_bands_T(blo, bmid, bup, d1)
     return g
 
 
-def _pcg(bands, alpha, w, rhs, *, maxiter, rtol):
+def _pcg(bands, alpha, w, rhs, *, maxiter, rtol, c=None):
     """PCG for ``H x = rhs``; H = line bands - alpha * cross-line neighbour coupling."""
     h0, h1, h2 = bands
     fac = factor_penta(h0, h1, h2)
 
     def hmul(x):
-        return M.band_matvec(h0, h1, h2, x) - alpha * _cross_neighbours(x, w)
+        return M.band_matvec(h0, h1, h2, x) - alpha * _cross_neighbours(x, w, c)
 
     x = np.zeros_like(rhs)
     res = rhs.copy()
@@ -340,7 +408,7 @@ def solve_level(prob: LevelProblem, u0, *, lam, beta_rel, max_iter, tol=1e-4,
     for it in range(1, max_iter + 1):
         jb, bands, _ = _line_hessian(prob, ev, alpha, beta, shape)
         g = _gradient(prob, ev, jb, u, alpha, beta)
-        step, ncg = _pcg(bands, alpha, w, -g, maxiter=cg_maxiter, rtol=cg_rtol)
+        step, ncg = _pcg(bands, alpha, w, -g, maxiter=cg_maxiter, rtol=cg_rtol, c=prob.edge_weights)
         cg_total += ncg
         slope = float(_dot(g, step))
         if slope >= 0:  # not a descent direction (should not happen): steepest descent
