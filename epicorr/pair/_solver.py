@@ -189,10 +189,10 @@ def charbonnier_weights(u, *, axis_weights, scale):
     -------
     tuple of 3 ndarray
         ``c_a = 1 / sqrt(1 + (g / delta)^2)``, shape of ``np.diff(u, axis=a)``,
-        values in (0, 1].
+        values in (0, 1], single precision (they only scale the smoothness).
     """
-    return tuple(1.0 / np.sqrt(1.0 + (np.sqrt(axis_weights[a]) * np.abs(np.diff(u, axis=a)) / scale) ** 2)
-                 for a in range(u.ndim))
+    return tuple((1.0 / np.sqrt(1.0 + (np.sqrt(axis_weights[a]) * np.abs(np.diff(u, axis=a)) / scale) ** 2))
+                 .astype(np.float32) for a in range(u.ndim))
 
 
 def _laplacian(u, w, c=None):
