@@ -79,6 +79,20 @@ def test_pybids_indexes_the_outputs_as_a_derivatives_dataset(finished_run):
     assert side["Sources"], side
 
 
+def test_pair_subject_page_shows_both_polarities(finished_run):
+    import re
+
+    _, out = finished_run
+    html = (out / "qc" / "sub-04.html").read_text()
+    # Every target of the reversed-PE subject (bold and dwi share the pair) shows the figure,
+    # drawn on the pair's own grid, with the agreement rising after correction.
+    found = re.findall(r"correlation in the field-estimation mask, on the grid of the reversed-PE "
+                       r"images (-?[0-9]+\.[0-9]+) → (-?[0-9]+\.[0-9]+)", html)
+    assert len(found) == html.count("Opposite phase-encode agreement") == 2, found
+    assert all(float(after) > float(before) for before, after in found), found
+    assert "Opposite phase-encode agreement" not in (out / "qc" / "sub-02.html").read_text()
+
+
 def test_bad_subjects_fail_alone_with_file_and_key_and_inputs_untouched(tmp_path, capsys):
     raw, out = tmp_path / "raw", tmp_path / "out"
     make_tiny_study(raw)

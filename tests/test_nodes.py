@@ -159,6 +159,7 @@ def test_each_route_workflow_improves_the_series(tmp_path, subject, kind):
     wf.config["execution"] = {"poll_sleep_duration": "0.1"}
     wf.run(plugin="Linear")
     image, field, mask = tiny_phantom()
+    shown = 0
     for item in plan.items:
         assert item.source.kind.value == kind
         res = collect_outputs(wf, outs[item.target.name])
@@ -172,3 +173,13 @@ def test_each_route_workflow_improves_the_series(tmp_path, subject, kind):
         assert _corr(first(out), image, mask) > _corr(first(raw), image, mask)
         assert len(res["unwarped"]) == len(item.target.files)
         assert len(res["dropout"]) == len(item.target.echoes)
+        if "pair_before_native" in res:
+            shown += 1
+            # Per-polarity means on the pair's grid for the QC page: they agree better unwarped.
+            grid = np.asanyarray(nib.load(res["mask_native"]).dataobj) > 0
+            before, after = ([np.asanyarray(nib.load(f).dataobj) for f in res[k]]
+                             for k in ("pair_before_native", "pair_after_native"))
+            assert len(before) == len(after) == 2 and before[0].shape == grid.shape
+            assert _corr(*after, grid) > _corr(*before, grid) + 0.05
+    # The reversed-PE route gives them once per field source (with its first target).
+    assert shown == (1 if kind == "reversed-pe" else 0)

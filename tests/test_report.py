@@ -174,3 +174,24 @@ def test_typical_page_size_stays_well_under_5mb(rng):
     s.targets = [t]
     size = len(render_subject_page(s).encode("utf-8"))
     assert size < 1_500_000, size  # the brief asks for well under 5 MB
+
+
+def test_pair_figure_on_its_own_grid(rng):
+    # The reversed-PE images may sit on another grid (the fmap acquisition's): the figure and
+    # its agreement numbers use that grid and mask, not the target's.
+    t = synth.target(rng, pair=False, extras=False)
+    shape = (30, 36, 20)
+    truth, brain = synth.head(rng, shape)
+    disp = -synth.field(shape) * synth.EES * shape[1]
+    t.pair_before = (synth.distort(truth, disp), synth.distort(truth, -disp))
+    t.pair_after = (truth, truth)
+    t.pair_affine, t.pair_mask, t.pair_pe_axis = np.diag([3.0, 3.0, 3.0, 1.0]), brain, 1
+    s = synth.subject(rng)
+    s.targets = [t]
+    html = render_subject_page(s)
+    found = re.findall(r"on the grid of the reversed-PE images (-?[0-9]+\.[0-9]+) → (-?[0-9]+\.[0-9]+)", html)
+    assert len(found) == 1, found
+    before, after = (float(x) for x in found[0])
+    # Identical unwarped images correlate exactly (Pearson r = 1); the distorted ones less.
+    assert after == 1.0 and before < 0.99
+    assert "Opposite phase-encode agreement" in html

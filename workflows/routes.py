@@ -6,7 +6,9 @@ Contract of every route workflow
 (:data:`~epicorr.workflows.TAIL_INPUTS`); ``outputnode``: the tail's outputs
 (:data:`~epicorr.workflows.TAIL_OUTPUTS`) plus ``field_native`` (the field on
 the field map's own grid), ``sigma_native``, ``mask_native``, ``magnitude_native`` and
-``field_info`` (what the estimator did).
+``field_info`` (what the estimator did).  The reversed-PE route also gives
+``pair_before_native`` and ``pair_after_native``: the mean + and mean - images
+as acquired and unwarped, on the pair's grid (for the QC page).
 """
 
 from __future__ import annotations
@@ -49,12 +51,17 @@ _NATIVE = {"field": "field_native", "sigma": "sigma_native", "mask": "mask_nativ
            "magnitude": "magnitude_native", "info": "field_info"}
 
 
+#: Extra estimator outputs of the reversed-PE route (estimator field -> outputnode field).
+_PAIR_NATIVE = {"pair_before": "pair_before_native", "pair_after": "pair_after_native"}
+
+
 def _assemble(name: str, kind: FieldSourceKind, estimator: pe.Node, wiring: list,
-              tail_options: dict) -> pe.Workflow:
+              tail_options: dict, extra: dict | None = None) -> pe.Workflow:
     wf = pe.Workflow(name=name)
     fields = list(ROUTE_INPUTS[kind]) + list(TAIL_INPUTS)
+    native = {**_NATIVE, **(extra or {})}
     inputnode = pe.Node(IdentityInterface(fields=fields), name="inputnode")
-    outputnode = pe.Node(IdentityInterface(fields=list(TAIL_OUTPUTS) + list(_NATIVE.values())),
+    outputnode = pe.Node(IdentityInterface(fields=list(TAIL_OUTPUTS) + list(native.values())),
                          name="outputnode")
     tail = build_tail_workflow(**tail_options)
     wf.connect([(inputnode, estimator, wiring)])
@@ -64,7 +71,7 @@ def _assemble(name: str, kind: FieldSourceKind, estimator: pe.Node, wiring: list
         (inputnode, tail, [(k, f"inputnode.{k}") for k in TAIL_INPUTS
                            if k not in ("field", "sigma", "mask", "magnitude", "field_info")]),
         (tail, outputnode, [(f"outputnode.{k}", k) for k in TAIL_OUTPUTS]),
-        (estimator, outputnode, list(_NATIVE.items())),
+        (estimator, outputnode, list(native.items())),
     ])
     return wf
 
@@ -102,7 +109,7 @@ def build_reversed_pe_workflow(name: str = "reversed_pe_route", **tail_options) 
     est = pe.Node(PairField(), name="field_from_pair")
     wiring = [("epi_files", "in_files"), ("epi_metadata", "metadata"),
               ("epi_metadata_files", "metadata_files")]
-    return _assemble(name, FieldSourceKind.REVERSED_PE, est, wiring, tail_options)
+    return _assemble(name, FieldSourceKind.REVERSED_PE, est, wiring, tail_options, extra=_PAIR_NATIVE)
 
 
 _BUILDERS = {

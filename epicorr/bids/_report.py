@@ -24,7 +24,28 @@ def _vol(path, index: int = 0) -> np.ndarray:
     return arr
 
 
-def _target_report(item, results: Mapping[str, Any], written: Mapping[str, Any]):
+def _pair_views(pair: Mapping[str, Any] | None) -> dict:
+    """TargetReport fields for the reversed-PE figure, drawn on the pair's own grid."""
+    import nibabel as nib
+
+    if not pair:
+        return {}
+    codes = list((pair.get("field_info") or {}).get("pe") or [])
+    plus = next((c for c in codes if not c.endswith("-")), "PE +")
+    minus = next((c for c in codes if c.endswith("-")), "PE -")
+    out = dict(pair_before=tuple(_vol(f) for f in pair["pair_before_native"]),
+               pair_after=tuple(_vol(f) for f in pair["pair_after_native"]),
+               pair_affine=nib.load(str(pair["pair_before_native"][0])).affine,
+               pair_labels=(f"{plus} (mean)", f"{minus} (mean)"))
+    if pair.get("mask_native"):
+        out["pair_mask"] = _vol(pair["mask_native"]) > 0
+    if codes and codes[0][:1] in ("i", "j", "k"):
+        out["pair_pe_axis"] = "ijk".index(codes[0][0])
+    return out
+
+
+def _target_report(item, results: Mapping[str, Any], written: Mapping[str, Any],
+                   pair: Mapping[str, Any] | None = None):
     import nibabel as nib
 
     from ..geometry import parse_pe_direction
@@ -67,7 +88,7 @@ def _target_report(item, results: Mapping[str, Any], written: Mapping[str, Any])
         affine=ref_img.affine,
         dropout_mask=_vol(written["dropout"][0]) > 0, retained_signal=_vol(written["retained"][0]),
         uncertainty=_vol(written["uncertainty"]), acquisition=acq,
-        notes=[f"field source linked by {item.link}"])
+        notes=[f"field source linked by {item.link}"], **_pair_views(pair))
 
 
 def write_subject_report(out_dir, subject: str, exported: Mapping[str, tuple], *,
@@ -75,7 +96,11 @@ def write_subject_report(out_dir, subject: str, exported: Mapping[str, tuple], *
     """Write ``OUTPUT_DIR/qc/sub-<L>.html`` from the exported targets."""
     from ..report import SubjectReport, write_subject_page
 
-    targets = [_target_report(item, results, written)
+    # The reversed-PE route gives its per-polarity images once per field source (with
+    # the source's first target); every target of that source shows them.
+    pairs = {id(item.source): results for item, results, _ in exported.values()
+             if results.get("pair_before_native") and results.get("pair_after_native")}
+    targets = [_target_report(item, results, written, pairs.get(id(item.source)))
                for item, results, written in exported.values()]
     report = SubjectReport(subject=subject, targets=targets, command_line=command_line,
                            failed_targets=[(name, f"skipped: {why}") for name, why in skipped])

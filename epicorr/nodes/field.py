@@ -171,11 +171,18 @@ class _PairInputSpec(BaseInterfaceInputSpec):
                                    "voxel (default: off, quadratic smoothness)")
 
 
+class _PairOutputSpec(_FieldOutputSpec):
+    pair_before = traits.List(File(exists=True), desc="mean of the + images and mean of the - images "
+                                                      "as acquired, on the pair's grid (for QC)")
+    pair_after = traits.List(File(exists=True), desc="the same two means unwarped with the field, "
+                                                     "on the pair's grid (for QC)")
+
+
 class PairField(SimpleInterface):
     """Field from a reversed-PE pair (:func:`epicorr.pair.estimate_field_from_pair`)."""
 
     input_spec = _PairInputSpec
-    output_spec = _FieldOutputSpec
+    output_spec = _PairOutputSpec
 
     def _run_interface(self, runtime):
         from ..errors import EpicorrInputError
@@ -206,8 +213,11 @@ class PairField(SimpleInterface):
             kwargs["edge_scale"] = float(self.inputs.edge_scale)
         est = estimate_field_from_pair(data, pe_directions=pes, voxels_per_hz=vph,
                                        affine=[i.affine for i in imgs], files=names, **kwargs)
-        _write_estimate(est, imgs[0].slicer[..., 0] if len(imgs[0].shape) == 4 else imgs[0],
-                        runtime, self._results)
+        grid = imgs[0].slicer[..., 0] if len(imgs[0].shape) == 4 else imgs[0]
+        _write_estimate(est, grid, runtime, self._results)
+        for key, stack in (("pair_before", est.polarity_before), ("pair_after", est.polarity_after)):
+            self._results[key] = [save_like(stack[n], grid, runtime, f"{key}_{sign}.nii.gz")
+                                  for n, sign in enumerate(("plus", "minus"))]
         return runtime
 
 

@@ -63,6 +63,11 @@ class PairEstimate:
         The mask used for the statistics (given, or derived from ``corrected``).
     affine : ndarray, shape (4, 4)
         The grid's voxel-to-world affine.
+    polarity_before : ndarray, shape (2, i, j, k), float32
+        Mean of the + images and mean of the - images as acquired (after the
+        rigid alignment), in the input intensity units: for QC figures.
+    polarity_after : ndarray, shape (2, i, j, k), float32
+        The same two means unwarped with the field (Jacobian-modulated).
     info : dict
         ``levels`` (per level: shape, alpha, beta, iterations, cg_iterations,
         seconds, min_jacobian), ``regularization`` (alpha per level),
@@ -78,6 +83,8 @@ class PairEstimate:
     sigma_hz: np.ndarray
     mask: np.ndarray
     affine: np.ndarray
+    polarity_before: np.ndarray | None = None
+    polarity_after: np.ndarray | None = None
     info: dict = field(default_factory=dict)
 
 
@@ -410,7 +417,18 @@ def estimate_field_from_pair(images, *, pe_directions, voxels_per_hz, affine, ma
     )
     return PairEstimate(field_hz=pe_back(field_pe).copy(), corrected=corrected_b.copy(),
                         residual=(pe_back(resid_pe) * intensity).copy(),
-                        sigma_hz=pe_back(sigma_pe).copy(), mask=msk, affine=inp.affine, info=info)
+                        sigma_hz=pe_back(sigma_pe).copy(), mask=msk, affine=inp.affine,
+                        polarity_before=_pair32(raw_plus, raw_minus, intensity),
+                        polarity_after=_pair32(pe_back(plus), pe_back(minus), intensity),
+                        info=info)
+
+
+def _pair32(a, b, scale):
+    """``(2, ...)`` float32 stack of ``a * scale`` and ``b * scale`` (no float64 stack)."""
+    out = np.empty((2,) + a.shape, dtype=np.float32)
+    np.multiply(a, scale, out=out[0], casting="same_kind")
+    np.multiply(b, scale, out=out[1], casting="same_kind")
+    return out
 
 
 def downsample_to(u, lev, n_lev, pyramids, plans):

@@ -86,6 +86,16 @@ class TargetReport:
         Reversed-PE data: the two polarities as acquired, and both unwarped.
     pair_labels : (str, str)
         Names of the two polarities, e.g. ``("j", "j-")``.
+    pair_affine : ndarray, shape (4, 4), optional
+        Voxel-to-world (RAS+ mm) affine of the pair images when they are on
+        their own grid (the reversed-PE acquisition's) rather than the
+        target's; None = the target grid.
+    pair_mask : ndarray of bool, optional
+        Brain or head mask on the pair's grid for the agreement figures (with
+        ``pair_affine``; else the target's brain mask is used).
+    pair_pe_axis : int, optional
+        Voxel axis (0, 1, 2 = i, j, k) of the pair's phase encoding, when it
+        is not the target's.
     acquisition : list of AcquisitionParam
     runtime_s : float, optional
     notes : list of str
@@ -112,6 +122,9 @@ class TargetReport:
     pair_before: tuple[np.ndarray, np.ndarray] | None = None
     pair_after: tuple[np.ndarray, np.ndarray] | None = None
     pair_labels: tuple[str, str] = ("PE +", "PE -")
+    pair_affine: np.ndarray | None = None
+    pair_mask: np.ndarray | None = None
+    pair_pe_axis: int | None = None
     acquisition: list[AcquisitionParam] = field(default_factory=list)
     runtime_s: float | None = None
     notes: list[str] = field(default_factory=list)

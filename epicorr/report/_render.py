@@ -87,11 +87,23 @@ def _target_context(t: TargetReport, n: int) -> dict[str, Any]:
                                                     uncertainty=t.uncertainty,
                                                     unit=t.uncertainty_unit, mask=mask)
     pair_corr = None
+    pair_where = "in the brain" if mask is not None else "over the whole volume"
     if t.pair_before is not None and t.pair_after is not None:
-        pair_corr = (brain_correlation(*t.pair_before, mask=mask),
-                     brain_correlation(*t.pair_after, mask=mask))
-        figs["pair"] = fg.pair_figure(view, before=t.pair_before, after=t.pair_after,
-                                      pe_axis=t.pe.axis, labels=t.pair_labels, corr=pair_corr)
+        pview, pmask = view, mask
+        if t.pair_affine is not None:  # the pair on its own grid
+            from nibabel.affines import voxel_sizes
+
+            pmask = None if t.pair_mask is None else np.asarray(t.pair_mask) > 0
+            pair_where = ("in the field-estimation mask, on the grid of the reversed-PE images"
+                          if pmask is not None else "over the whole grid of the reversed-PE images")
+            pview = fg.SliceView.from_grid(np.shape(t.pair_before[0]),
+                                           voxel_size_mm=voxel_sizes(np.asarray(t.pair_affine, float)),
+                                           affine=t.pair_affine, mask=pmask)
+        pair_corr = (brain_correlation(*t.pair_before, mask=pmask),
+                     brain_correlation(*t.pair_after, mask=pmask))
+        figs["pair"] = fg.pair_figure(pview, before=t.pair_before, after=t.pair_after,
+                                      pe_axis=t.pe.axis if t.pair_pe_axis is None else int(t.pair_pe_axis),
+                                      labels=t.pair_labels, corr=pair_corr)
     counts = {s: sum(m.status == s for m in t.metrics) for s in STATUSES}
     compare = []
     for (title, before, after, ratio), orient in zip(figs["compare"], fg.ORIENTATIONS):
@@ -99,6 +111,7 @@ def _target_context(t: TargetReport, n: int) -> dict[str, Any]:
     figs["compare"] = compare
     return {"t": t, "n": n, "anchor": f"target-{n}", "status": t.status, "figs": figs,
             "counts": counts, "pair_corr": pair_corr,
+            "pair_where": pair_where,
             "edges_label": t.edges_label if t.edges is not None else "corrected EPI reference"}
 
 
