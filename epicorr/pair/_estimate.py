@@ -371,10 +371,10 @@ def estimate_field_from_pair(images, *, pe_directions, voxels_per_hz, affine, ma
     t_coarse = time.perf_counter() - t0
     if coarse_lo == 1:
         u = run_levels(u, 0, 1)
+    # IRLS on the finest level: Charbonnier factors at the current field, then re-solve.
+    axis_w0 = tuple(float((spacing_pe[0] / spacing_pe[a]) ** 2) for a in range(3))
     for _ in range(edge_passes if edge_scale is not None else 0):
-        # IRLS on the finest level: Charbonnier factors at the current field, then re-solve.
-        aw = tuple(float((spacing_pe[0] / spacing_pe[a]) ** 2) for a in range(3))
-        edge_w[0] = charbonnier_weights(u, axis_weights=aw, scale=edge_scale)
+        edge_w[0] = charbonnier_weights(u, axis_weights=axis_w0, scale=edge_scale)
         u = run_levels(u, 0, 1)
     t_fine = time.perf_counter() - t0 - t_coarse
     final = level_info[-1]
