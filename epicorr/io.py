@@ -249,7 +249,7 @@ def _atomic_write(path: Any, write) -> Path:
     return path
 
 
-def remove_stale_temporaries(folder: Any, *, name_prefix: str) -> list[Path]:
+def remove_stale_temporaries(folder: Any, *, name_prefix: str, recursive: bool = True) -> list[Path]:
     """Delete the hidden temporaries an interrupted atomic write left behind.
 
     The atomic writers name a temporary ``.<final name>.<random>.part<ext>``
@@ -258,7 +258,9 @@ def remove_stale_temporaries(folder: Any, *, name_prefix: str) -> list[Path]:
     ``name_prefix`` followed by ``_`` or ``.`` (e.g. ``"sub-01"``, which
     leaves ``sub-010``'s alone) are removed, anywhere under
     ``folder``, so a re-run of one subject never touches another's writes in
-    progress.  A missing folder is fine.
+    progress.  A missing folder is fine.  ``recursive=False`` looks in
+    ``folder`` itself only (for batch-level files such as
+    ``dataset_description.json`` at the top of a large output tree).
 
     Returns
     -------
@@ -269,7 +271,8 @@ def remove_stale_temporaries(folder: Any, *, name_prefix: str) -> list[Path]:
     removed: list[Path] = []
     if not root.is_dir():
         return removed
-    for path in root.rglob(f".{name_prefix}*.part*"):
+    pattern = f".{name_prefix}*.part*"
+    for path in root.rglob(pattern) if recursive else root.glob(pattern):
         rest = path.name[1:]
         after = rest[len(name_prefix):len(name_prefix) + 1]
         if not rest.startswith(name_prefix) or after not in ("_", ".") or not path.is_file():

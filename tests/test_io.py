@@ -224,3 +224,11 @@ def test_stale_temporaries_of_one_subject_are_removed_and_nothing_else(tmp_path)
     assert sorted(removed) == sorted(stale)
     assert all(p.exists() for p in keep) and not any(p.exists() for p in stale)
     assert remove_stale_temporaries(tmp_path / "missing", name_prefix="sub-01") == []
+    # Top level only: a batch-level file's temporary goes, a same-named one deeper stays.
+    top = tmp_path / ".dataset_description.json.a1b2.part.json"
+    deep = func / ".dataset_description.json.c3d4.part.json"
+    for p in (top, deep):
+        p.write_text("x")
+    assert remove_stale_temporaries(tmp_path, name_prefix="dataset_description.json",
+                                    recursive=False) == [top]
+    assert deep.exists() and not top.exists()

@@ -254,11 +254,11 @@ def run(args) -> int:
     command = ["epicorr"] + (sys.argv[1:] if sys.argv and "epicorr" in Path(sys.argv[0]).name
                              else ["run", str(bids_dir), str(out_dir), "participant"])
     # Batch-level files an interrupted run may have left half-written as temporaries.
+    from ..io import remove_stale_temporaries
+
     for folder, name in ((out_dir, "dataset_description.json"), (out_dir / "qc", "index.html"),
                          (out_dir / "logs", "summary.json")):
-        if folder.is_dir():
-            for stale in folder.glob(f".{name}.*.part*"):
-                stale.unlink(missing_ok=True)
+        remove_stale_temporaries(folder, name_prefix=name, recursive=False)
     write_dataset_description(out_dir, source_dir=bids_dir, command=command)
     options = {"Interpolation": args.interpolation, "Jacobian": not args.no_jacobian,
                "DropoutThreshold": float(args.dropout_threshold)}
