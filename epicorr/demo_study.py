@@ -34,8 +34,8 @@ from pathlib import Path
 import nibabel as nib
 import numpy as np
 
-from .simulate import (default_affine, dipole_field_hz, phase_to_integer, shim, simulate_dual_echo,
-                       simulate_epi, synthetic_head, true_retained_signal)
+from .simulate import (default_affine, dipole_field_hz, phase_to_integer, shim, signal_side_field,
+                       simulate_dual_echo, simulate_epi, synthetic_head, true_retained_signal)
 
 __all__ = ["build_demo_study", "STUDY_NAME", "TASK", "SUBJECTS"]
 
@@ -185,6 +185,9 @@ def build_demo_study(out_dir, *, seed: int = 0, small: bool = True) -> dict:
                               rotation_deg=(4.0 * (n_sub - 1.5), 0.0, 2.0 * (n_sub - 1.5)))
         field = shim(dipole_field_hz(head.chi_ppm, affine=head.affine, b0_tesla=_B0),
                      mask=head.brain_mask, affine=head.affine)
+        # What the signal sees: tissue-side values carried into the air around the head (the
+        # brain is untouched), so scalp signal is not thrown along PE by the air's field.
+        field = signal_side_field(field, tissue_fraction=head.tissue_fraction, keep=head.brain_mask)
         files: list[str] = []
         fmap_id = f"fmap{label}"
         bold_name = f"{sub}_task-{TASK}_bold.nii.gz"
