@@ -85,8 +85,8 @@ def test_pair_subject_page_shows_both_polarities(finished_run):
     _, out = finished_run
     html = (out / "qc" / "sub-04.html").read_text()
     # Every target of the reversed-PE subject (bold and dwi share the pair) shows the figure,
-    # drawn on the pair's own grid, with the agreement rising after correction.
-    found = re.findall(r"correlation in the field-estimation mask, on the grid of the reversed-PE "
+    # drawn on the pair's own grid, with the agreement in its brain rising after correction.
+    found = re.findall(r"correlation in the brain, on the grid of the reversed-PE "
                        r"images (-?[0-9]+\.[0-9]+) → (-?[0-9]+\.[0-9]+)", html)
     assert len(found) == html.count("Opposite phase-encode agreement") == 2, found
     assert all(float(after) > float(before) for before, after in found), found

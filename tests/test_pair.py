@@ -234,6 +234,20 @@ def test_recovers_known_field(phantom, estimate):
     assert e_corr < 0.6 * min(_rmse(p, obj, mask), _rmse(m, obj, mask))
 
 
+def test_without_a_mask_the_agreement_is_also_quoted_in_the_brain(phantom):
+    # No mask given: the statistics mask is the corrected image's foreground, and the brain
+    # (epicorr.brainmask, the mask every route's QC uses) lies inside it.
+    p, m, _f, _o, _mask = phantom
+    est = estimate_field_from_pair([p, m], pe_directions=["j", "j-"], voxels_per_hz=VPH, affine=AFF)
+    assert est.brain_mask.shape == p.shape and not np.any(est.brain_mask & ~est.mask)
+    assert 0 < est.brain_mask.sum() <= est.mask.sum()
+    info = est.info
+    assert info["agreement_after_brain"] > info["agreement_before_brain"]
+    assert info["agreement_after_brain"] == pytest.approx(
+        np.corrcoef(*(x[est.brain_mask] for x in est.polarity_after))[0, 1], abs=1e-4)
+    assert est.polarity_before.shape == (2,) + p.shape and est.polarity_before.dtype == np.float32
+
+
 def test_swapping_polarities_gives_the_same_field(phantom, estimate):
     p, m, _f, _o, mask = phantom
     swapped = estimate_field_from_pair([m, p], pe_directions=["j-", "j"], voxels_per_hz=VPH,

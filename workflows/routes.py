@@ -8,7 +8,8 @@ Contract of every route workflow
 the field map's own grid), ``sigma_native``, ``mask_native``, ``magnitude_native`` and
 ``field_info`` (what the estimator did).  The reversed-PE route also gives
 ``pair_before_native`` and ``pair_after_native``: the mean + and mean - images
-as acquired and unwarped, on the pair's grid (for the QC page).
+as acquired and unwarped, on the pair's grid (for the QC page), and
+``pair_brain_native``, the brain mask there in which their agreement is quoted.
 """
 
 from __future__ import annotations
@@ -52,7 +53,8 @@ _NATIVE = {"field": "field_native", "sigma": "sigma_native", "mask": "mask_nativ
 
 
 #: Extra estimator outputs of the reversed-PE route (estimator field -> outputnode field).
-_PAIR_NATIVE = {"pair_before": "pair_before_native", "pair_after": "pair_after_native"}
+_PAIR_NATIVE = {"pair_before": "pair_before_native", "pair_after": "pair_after_native",
+                "brain_mask": "pair_brain_native"}
 
 
 def _assemble(name: str, kind: FieldSourceKind, estimator: pe.Node, wiring: list,

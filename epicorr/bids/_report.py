@@ -37,8 +37,10 @@ def _pair_views(pair: Mapping[str, Any] | None) -> dict:
                pair_after=tuple(_vol(f) for f in pair["pair_after_native"]),
                pair_affine=nib.load(str(pair["pair_before_native"][0])).affine,
                pair_labels=(f"{plus} (mean)", f"{minus} (mean)"))
-    if pair.get("mask_native"):
-        out["pair_mask"] = _vol(pair["mask_native"]) > 0
+    if pair.get("pair_brain_native"):
+        out["pair_mask"] = _vol(pair["pair_brain_native"]) > 0
+    elif pair.get("mask_native"):
+        out["pair_mask"], out["pair_mask_label"] = _vol(pair["mask_native"]) > 0, "the field-estimation mask"
     if codes and codes[0][:1] in ("i", "j", "k"):
         out["pair_pe_axis"] = "ijk".index(codes[0][0])
     return out

@@ -176,6 +176,8 @@ class _PairOutputSpec(_FieldOutputSpec):
                                                       "as acquired, on the pair's grid (for QC)")
     pair_after = traits.List(File(exists=True), desc="the same two means unwarped with the field, "
                                                      "on the pair's grid (for QC)")
+    brain_mask = File(exists=True, desc="brain of the corrected reference inside the measurement mask "
+                                        "(uint8 0/1), on the pair's grid: where the agreement is quoted")
 
 
 class PairField(SimpleInterface):
@@ -215,6 +217,8 @@ class PairField(SimpleInterface):
                                        affine=[i.affine for i in imgs], files=names, **kwargs)
         grid = imgs[0].slicer[..., 0] if len(imgs[0].shape) == 4 else imgs[0]
         _write_estimate(est, grid, runtime, self._results)
+        self._results["brain_mask"] = save_like(est.brain_mask.astype(np.uint8), grid, runtime,
+                                                "brain_mask.nii.gz", dtype=np.uint8)
         for key, stack in (("pair_before", est.polarity_before), ("pair_after", est.polarity_after)):
             self._results[key] = [save_like(stack[n], grid, runtime, f"{key}_{sign}.nii.gz")
                                   for n, sign in enumerate(("plus", "minus"))]

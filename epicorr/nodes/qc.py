@@ -29,9 +29,10 @@ class _QCMetricsInputSpec(BaseInterfaceInputSpec):
     pair_after = traits.List(File(exists=True), maxlen=2, minlen=2,
                              desc="reversed-PE data: the two images after correction")
     field_info = traits.Dict(desc="the field estimator's details; for a reversed-PE pair its "
-                                  "agreement_before / agreement_after (correlation of the two "
-                                  "polarities on the pair's grid) are reported when pair_after "
-                                  "is not given")
+                                  "agreement_before_brain / agreement_after_brain (correlation of "
+                                  "the two polarities in the brain on the pair's grid; else "
+                                  "agreement_before / agreement_after, in its mask) are reported "
+                                  "when pair_after is not given")
     registration_quality = traits.Float(desc="similarity 0-1 of the moved field-map magnitude "
                                              "with the EPI reference")
     runtime_s = traits.Float(desc="processing time of the target so far, s")
@@ -69,10 +70,12 @@ class QCMetrics(SimpleInterface):
             kwargs["pair_after"] = tuple(vol(p, "pair image") for p in self.inputs.pair_after)
         if not isdefined(self.inputs.pair_after) and isdefined(self.inputs.field_info):
             info = self.inputs.field_info
-            if info.get("agreement_after") is not None:
-                before = info.get("agreement_before")
+            # In the brain when the estimator gives it, else in its (head) mask.
+            where = "_brain" if info.get("agreement_after_brain") is not None else ""
+            if info.get("agreement_after" + where) is not None:
+                before = info.get("agreement_before" + where)
                 kwargs["pair_agreement"] = (float("nan") if before is None else float(before),
-                                            float(info["agreement_after"]))
+                                            float(info["agreement_after" + where]))
         if isdefined(self.inputs.registration_quality):
             kwargs["registration_quality"] = float(self.inputs.registration_quality)
         if isdefined(self.inputs.runtime_s):

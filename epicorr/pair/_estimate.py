@@ -8,6 +8,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import ndimage
 
+from ..brainmask import epi_brain_mask
 from ..errors import EpicorrInputError
 from . import _combine, _model, _rigid
 from ._inputs import prepare_inputs
@@ -60,7 +61,11 @@ class PairEstimate:
         Approximate standard deviation of ``field_hz``, Hz (from the
         Gauss-Newton Hessian diagonal and the local residual variance).
     mask : ndarray of bool, shape (i, j, k)
-        The mask used for the statistics (given, or derived from ``corrected``).
+        The mask used for the statistics (given, or derived from ``corrected``):
+        the head (foreground) when derived.
+    brain_mask : ndarray of bool, shape (i, j, k)
+        The given mask, or the brain of ``corrected`` inside ``mask``
+        (:func:`epicorr.brainmask.epi_brain_mask`, the mask every route's QC uses).
     affine : ndarray, shape (4, 4)
         The grid's voxel-to-world affine.
     polarity_before : ndarray, shape (2, i, j, k), float32
@@ -74,7 +79,9 @@ class PairEstimate:
         ``rigid`` (per outer iteration: largest displacement of each moved
         image, mm), ``edge_passes`` (reweighting passes run, 0 when off),
         ``agreement_before`` / ``agreement_after`` (correlation of the + and
-        - means inside the mask), ``timings`` (s), ``notes``.
+        - means inside ``mask``), ``agreement_before_brain`` /
+        ``agreement_after_brain`` (the same inside ``brain_mask``),
+        ``timings`` (s), ``notes``.
     """
 
     field_hz: np.ndarray
@@ -83,6 +90,7 @@ class PairEstimate:
     sigma_hz: np.ndarray
     mask: np.ndarray
     affine: np.ndarray
+    brain_mask: np.ndarray | None = None
     polarity_before: np.ndarray | None = None
     polarity_after: np.ndarray | None = None
     info: dict = field(default_factory=dict)
@@ -397,6 +405,7 @@ def estimate_field_from_pair(images, *, pe_directions, voxels_per_hz, affine, ma
 
     corrected_b = pe_back(corrected) * intensity
     msk = inp.mask if inp.mask is not None else _auto_mask(corrected_b)
+    brain = msk if inp.mask is not None else _brain_of(corrected_b, msk)
     raw_plus = np.mean([v for v, p in zip(vols, inp.pe) if p.polarity > 0], axis=0)
     raw_minus = np.mean([v for v, p in zip(vols, inp.pe) if p.polarity < 0], axis=0)
     info = dict(
@@ -408,6 +417,8 @@ def estimate_field_from_pair(images, *, pe_directions, voxels_per_hz, affine, ma
         edge_passes=edge_passes if edge_scale is not None else 0,
         agreement_before=_corr(raw_plus, raw_minus, msk),
         agreement_after=_corr(pe_back(plus), pe_back(minus), msk),
+        agreement_before_brain=_corr(raw_plus, raw_minus, brain),
+        agreement_after_brain=_corr(pe_back(plus), pe_back(minus), brain),
         combine=cinfo,
         timings=dict(inputs=t_inputs, coarse=t_coarse, fine=t_fine, combine=t_combine,
                      total=time.perf_counter() - t_start),
@@ -417,10 +428,21 @@ def estimate_field_from_pair(images, *, pe_directions, voxels_per_hz, affine, ma
     )
     return PairEstimate(field_hz=pe_back(field_pe).copy(), corrected=corrected_b.copy(),
                         residual=(pe_back(resid_pe) * intensity).copy(),
-                        sigma_hz=pe_back(sigma_pe).copy(), mask=msk, affine=inp.affine,
+                        sigma_hz=pe_back(sigma_pe).copy(), mask=msk, brain_mask=brain,
+                        affine=inp.affine,
                         polarity_before=_pair32(raw_plus, raw_minus, intensity),
                         polarity_after=_pair32(pe_back(plus), pe_back(minus), intensity),
                         info=info)
+
+
+def _brain_of(corrected, head):
+    """Brain mask of the corrected reference inside ``head`` (:func:`epicorr.brainmask.epi_brain_mask`);
+    ``head`` itself when no brain is found."""
+    try:
+        brain = epi_brain_mask(corrected) & head
+    except EpicorrInputError:
+        return head
+    return brain if brain.any() else head
 
 
 def _pair32(a, b, scale):

@@ -93,6 +93,8 @@ class TargetReport:
     pair_mask : ndarray of bool, optional
         Brain or head mask on the pair's grid for the agreement figures (with
         ``pair_affine``; else the target's brain mask is used).
+    pair_mask_label : str
+        What ``pair_mask`` is, for the caption (e.g. ``"the brain"``).
     pair_pe_axis : int, optional
         Voxel axis (0, 1, 2 = i, j, k) of the pair's phase encoding, when it
         is not the target's.
@@ -124,6 +126,7 @@ class TargetReport:
     pair_labels: tuple[str, str] = ("PE +", "PE -")
     pair_affine: np.ndarray | None = None
     pair_mask: np.ndarray | None = None
+    pair_mask_label: str = "the brain"
     pair_pe_axis: int | None = None
     acquisition: list[AcquisitionParam] = field(default_factory=list)
     runtime_s: float | None = None

@@ -94,7 +94,7 @@ def _target_context(t: TargetReport, n: int) -> dict[str, Any]:
             from nibabel.affines import voxel_sizes
 
             pmask = None if t.pair_mask is None else np.asarray(t.pair_mask) > 0
-            pair_where = ("in the field-estimation mask, on the grid of the reversed-PE images"
+            pair_where = (f"in {t.pair_mask_label}, on the grid of the reversed-PE images"
                           if pmask is not None else "over the whole grid of the reversed-PE images")
             pview = fg.SliceView.from_grid(np.shape(t.pair_before[0]),
                                            voxel_size_mm=voxel_sizes(np.asarray(t.pair_affine, float)),
