@@ -288,7 +288,8 @@ def main(argv=None) -> dict:
               f"RMSE {b['rmse_hz']:.2f} Hz")
     for s in results["simulator"]:
         smooth = "quadratic" if s["edge_scale"] is None else f"edge-preserving {s['edge_scale']}"
-        print(f"simulator {s['shape']} SNR {s['snr']} ({s['field_model']} field, {smooth} smoothness): RMSE {s['rmse_hz']:.2f} Hz (median |err| "
+        print(f"simulator {s['shape']} SNR {s['snr']} ({s['field_model']} field, {smooth} smoothness): "
+              f"RMSE {s['rmse_hz']:.2f} Hz (median |err| "
               f"{s['median_abs_error_hz']:.2f}, field RMS {s['field_rms_hz']:.1f} Hz, max displacement "
               f"{s['max_displacement_vox']:.1f} vox), agreement {s['agreement_before']:.3f} -> "
               f"{s['agreement_after']:.3f}")

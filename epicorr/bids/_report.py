@@ -40,7 +40,8 @@ def _pair_views(pair: Mapping[str, Any] | None) -> dict:
     if pair.get("pair_brain_native"):
         out["pair_mask"] = _vol(pair["pair_brain_native"]) > 0
     elif pair.get("mask_native"):
-        out["pair_mask"], out["pair_mask_label"] = _vol(pair["mask_native"]) > 0, "the field-estimation mask"
+        out["pair_mask"] = _vol(pair["mask_native"]) > 0
+        out["pair_mask_label"] = "the field-estimation mask"
     if codes and codes[0][:1] in ("i", "j", "k"):
         out["pair_pe_axis"] = "ijk".index(codes[0][0])
     return out
