@@ -78,7 +78,8 @@ def worker(size: str, edge_scale: float | None = None) -> None:
     t_data = time.perf_counter() - t0
     est, wall, cpu = _run_epicorr(p, m, mask, vph, 1.25, edge_scale=edge_scale)
     usage = resource.getrusage(resource.RUSAGE_SELF)
-    print(json.dumps(dict(shape=shape, voxels=int(np.prod(shape)), edge_scale=edge_scale, data_seconds=t_data,
+    print(json.dumps(dict(shape=shape, voxels=int(np.prod(shape)), edge_scale=edge_scale,
+                          data_seconds=t_data,
                           seconds=wall, cpu_seconds=cpu, peak_rss_mib=usage.ru_maxrss / 1024.0,
                           rmse_hz=_rmse(est.field_hz, f, mask),
                           field_rms_hz=float(np.sqrt(np.mean(f[mask] ** 2))),
@@ -86,6 +87,13 @@ def worker(size: str, edge_scale: float | None = None) -> None:
                           agreement_after=est.info["agreement_after"],
                           gauss_newton_iterations=est.info["iterations"],
                           timings=est.info["timings"])))
+
+
+def _in_subprocess(size: str, *extra: str) -> dict:
+    """Run :func:`worker` in a fresh process (its own peak memory); its JSON result."""
+    out = subprocess.run([sys.executable, __file__, "--worker", size, *extra],
+                         capture_output=True, text=True, check=True)
+    return json.loads(out.stdout.strip().splitlines()[-1])
 
 
 def baseline_sitk(p, m, vph, voxel_mm, *, mesh=(8, 8, 6), iterations=30):
@@ -167,10 +175,11 @@ def _pullback_ceiling(ims, d_true, mask, err, steep=0.1, signal=None, fold_margi
     folded[:, 1:] |= step
     if signal is not None:
         folded &= signal
-    near = ndimage.binary_dilation(folded, iterations=fold_margin) & mask if folded.any() else folded & mask
+    near = ndimage.binary_dilation(folded, iterations=fold_margin) & mask
     return dict(folded_fraction=float(near.sum() / mask.sum()),
                 rmse_unfolded_hz=float(np.sqrt(np.mean(err[mask & ~near] ** 2))),
-                folded_signal_voxels=int(folded.sum()),agreement_at_true_field=_corr(up, dn, mask),
+                folded_signal_voxels=int(folded.sum()),
+                agreement_at_true_field=_corr(up, dn, mask),
                 agreement_at_true_field_calm=_corr(up, dn, calm),
                 steep_fraction=float(bad.sum() / mask.sum()),
                 rmse_steep_hz=float(np.sqrt(np.mean(err[bad] ** 2))) if bad.any() else 0.0,
@@ -247,16 +256,12 @@ def main(argv=None) -> dict:
 
     # 2. 192x192x120 in a subprocess (peak memory of a fresh process).
     if not quick:
-        out = subprocess.run([sys.executable, __file__, "--worker", "192x192x120"],
-                             capture_output=True, text=True, check=True)
-        big = json.loads(out.stdout.strip().splitlines()[-1])
+        big = _in_subprocess("192x192x120")
         big.update(target_seconds=120.0, target_peak_rss_mib=2048.0,
                    unknowns_per_second=big["voxels"] / big["seconds"])
         results["pair_192x192x120"] = big
         # The same pair with the edge-preserving option (two extra finest-level solves).
-        out = subprocess.run([sys.executable, __file__, "--worker", "192x192x120", "0.3"],
-                             capture_output=True, text=True, check=True)
-        big_e = json.loads(out.stdout.strip().splitlines()[-1])
+        big_e = _in_subprocess("192x192x120", "0.3")
         big_e.update(target_seconds=120.0, target_peak_rss_mib=2048.0)
         results["pair_192x192x120_edge_scale_0.3"] = big_e
 

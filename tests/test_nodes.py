@@ -177,6 +177,8 @@ def test_each_route_workflow_improves_the_series(tmp_path, subject, kind):
             shown += 1
             # Per-polarity means on the pair's grid for the QC page: they agree better unwarped.
             grid = np.asanyarray(nib.load(res["mask_native"]).dataobj) > 0
+            brain = np.asanyarray(nib.load(res["pair_brain_native"]).dataobj) > 0
+            assert brain.any() and not np.any(brain & ~grid)  # the brain lies inside the head
             before, after = ([np.asanyarray(nib.load(f).dataobj) for f in res[k]]
                              for k in ("pair_before_native", "pair_after_native"))
             assert len(before) == len(after) == 2 and before[0].shape == grid.shape

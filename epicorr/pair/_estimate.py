@@ -312,8 +312,7 @@ def estimate_field_from_pair(images, *, pe_directions, voxels_per_hz, affine, ma
         cum.append(cum[-1] * np.asarray(f))
     pyramids = [_pyramid(pe_first(v), plans) for v in vols]
     level_info = []
-
-    edge_w = {}
+    edge_w0 = None  # Charbonnier factors of the finest level (set by the IRLS passes below)
 
     def run_levels(u, lo, hi):
         """Solve levels hi-1 .. lo (coarse to fine); ``u`` is on level hi (or None)."""
@@ -327,7 +326,7 @@ def estimate_field_from_pair(images, *, pe_directions, voxels_per_hz, affine, ma
             axis_w = tuple(float((h[0] / h[a]) ** 2) for a in range(3))
             prob = LevelProblem(images=[p[lev] for p in pyramids],
                                 coefs=coefs, weights=weights, axis_weights=axis_w,
-                                upsample=upsample, edge_weights=edge_w.get(lev))
+                                upsample=upsample, edge_weights=edge_w0 if lev == 0 else None)
             u, info = solve_level(prob, u, lam=regularization, beta_rel=barrier,
                                   max_iter=iterations[0] if lev == 0 else iterations[1])
             info["level"] = lev
@@ -379,10 +378,11 @@ def estimate_field_from_pair(images, *, pe_directions, voxels_per_hz, affine, ma
     t_coarse = time.perf_counter() - t0
     if coarse_lo == 1:
         u = run_levels(u, 0, 1)
+    n_passes = edge_passes if edge_scale is not None else 0
     # IRLS on the finest level: Charbonnier factors at the current field, then re-solve.
     axis_w0 = tuple(float((spacing_pe[0] / spacing_pe[a]) ** 2) for a in range(3))
-    for _ in range(edge_passes if edge_scale is not None else 0):
-        edge_w[0] = charbonnier_weights(u, axis_weights=axis_w0, scale=edge_scale)
+    for _ in range(n_passes):
+        edge_w0 = charbonnier_weights(u, axis_weights=axis_w0, scale=edge_scale)
         u = run_levels(u, 0, 1)
     t_fine = time.perf_counter() - t0 - t_coarse
     final = level_info[-1]
@@ -414,7 +414,7 @@ def estimate_field_from_pair(images, *, pe_directions, voxels_per_hz, affine, ma
         regularization=[li["alpha"] for li in level_info],
         iterations=sum(li["iterations"] for li in level_info),
         rigid=rigid_log,
-        edge_passes=edge_passes if edge_scale is not None else 0,
+        edge_passes=n_passes,
         agreement_before=_corr(raw_plus, raw_minus, msk),
         agreement_after=_corr(pe_back(plus), pe_back(minus), msk),
         agreement_before_brain=_corr(raw_plus, raw_minus, brain),
