@@ -311,6 +311,26 @@ def test_26b_pair_bad_edge_scale(case, capsys, value):
            names=("edge_scale",))
 
 
+@pytest.mark.parametrize("value", ["-1", "nan", "inf"])
+def test_26c_pair_bad_harmonic(case, capsys, value):
+    src, out = case
+    _check(["pair-field", src / "ap.nii.gz", src / "pa.nii.gz", "--pe-directions", "j", "j-",
+            "--echo-spacing", EES, "--harmonic", value, "--out", out / "field.nii.gz"], src, out, capsys,
+           names=("harmonic",))
+
+
+def test_good_pair_works_with_harmonic(case, capsys):
+    """Control for 26c: the same pair succeeds with the harmonic refinement on (-50 Hz, as above)."""
+    src, out = case
+    argv = ["pair-field", src / "ap.nii.gz", src / "pa.nii.gz", "--pe-directions", "j", "j-",
+            "--echo-spacing", EES, "--harmonic", "300", "--out", out / "field.nii.gz"]
+    assert main([str(a) for a in argv]) == 0
+    field = np.asarray(nib.load(str(out / "field.nii.gz")).dataobj)
+    image, _ = _phantom()
+    inner = ndimage.binary_erosion(image > 0, iterations=2)
+    assert np.median(field[inner]) == pytest.approx(-50.0, abs=5.0)
+
+
 def test_27_equal_echo_times(case, capsys):
     src, out = case
     _check(["phase-field", "--phasediff", src / "phasediff.nii.gz", "--magnitude", src / "mag.nii.gz",

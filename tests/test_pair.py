@@ -361,7 +361,8 @@ def test_same_polarity_rejected():
                                        ("barrier", -0.1), ("levels", 0), ("iterations", (5,)),
                                        ("iterations", (5, 0)), ("motion_iterations", -1),
                                        ("edge_scale", 0.0), ("edge_scale", float("inf")),
-                                       ("edge_passes", 0)])
+                                       ("edge_passes", 0), ("harmonic", -1.0),
+                                       ("harmonic", float("nan"))])
 def test_bad_solver_options_rejected_before_any_work(key, value):
     # The option is named with its bad value in the one-line message (package error contract).
     with pytest.raises(EpicorrInputError, match=key) as err:

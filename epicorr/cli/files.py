@@ -61,6 +61,10 @@ def register(subparsers) -> None:
                    help="edge-preserving smoothness: field step between neighbours, in voxels of "
                         "displacement per voxel, above which smoothing is relaxed (e.g. 0.3; default "
                         "off, plain quadratic smoothness)")
+    p.add_argument("--harmonic", type=float, metavar="WEIGHT",
+                   help="harmonic refinement: the field inside the brain is pulled towards a solution "
+                        "of Laplace's equation, as a field from outside sources is (e.g. 300; default "
+                        "off; about twice the time)")
     p.set_defaults(func=_pair_field)
 
     p = subparsers.add_parser(
@@ -196,6 +200,8 @@ def _pair_field(args) -> int:
                      metadata_files=[f"--pe-directions ({p})" for p in args.images])
     if args.edge_scale is not None:
         node.inputs.edge_scale = args.edge_scale
+    if args.harmonic is not None:
+        node.inputs.harmonic = args.harmonic
     _run_node(node, {"field": str(out), "magnitude": str(corrected) if corrected else None})
     print(f"wrote {out} (field in Hz)")
     return 0

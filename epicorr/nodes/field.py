@@ -169,6 +169,8 @@ class _PairInputSpec(BaseInterfaceInputSpec):
     regularization = traits.Float(desc="smoothness weight factor (default: the estimator's own)")
     edge_scale = traits.Float(desc="edge-preserving smoothness scale, voxels of displacement per PE "
                                    "voxel (default: off, quadratic smoothness)")
+    harmonic = traits.Float(desc="harmonic refinement inside the brain, dimensionless weight "
+                                 "(default: off; 300 is a reasonable start)")
 
 
 class _PairOutputSpec(_FieldOutputSpec):
@@ -213,6 +215,8 @@ class PairField(SimpleInterface):
             kwargs["regularization"] = float(self.inputs.regularization)
         if isdefined(self.inputs.edge_scale):
             kwargs["edge_scale"] = float(self.inputs.edge_scale)
+        if isdefined(self.inputs.harmonic):
+            kwargs["harmonic"] = float(self.inputs.harmonic)
         est = estimate_field_from_pair(data, pe_directions=pes, voxels_per_hz=vph,
                                        affine=[i.affine for i in imgs], files=names, **kwargs)
         grid = imgs[0].slicer[..., 0] if len(imgs[0].shape) == 4 else imgs[0]

@@ -33,6 +33,21 @@ before; larger ones (the steep field next to air-tissue interfaces) are
 penalised roughly linearly instead of quadratically, so they are flattened
 less.  ``alpha`` keeps the unweighted ``trace(L)`` of the rule below.
 
+Harmonic penalty (optional)
+---------------------------
+``LevelProblem.harmonic_weights`` ``W`` (1 inside the brain) adds
+``gamma/2 || W^(1/2) L u ||^2`` with ``L = sum_a w_a D+_a^T D+_a`` the
+weighted graph Laplacian of the smoothness term.  Outside magnetised
+sources the static field obeys Laplace's equation, so inside tissue of
+nearly uniform susceptibility a harmonic field is penalised hardly at all,
+however steep (the quadratic smoothness would flatten it); Li & Leigh (2001)
+use the same property to map fields.  It is the curvature penalty of image
+registration (Fischer & Modersitzki 2003) restricted to the brain.  Its
+Hessian ``gamma L W L`` is applied exactly in the conjugate gradients; its
+line-wise part (:func:`harmonic_line_bands`, pentadiagonal) joins the
+preconditioner.  ``gamma = harmonic * trace(J^T J) / trace(L W L)``, so the
+constant is dimensionless like ``lam``.
+
 Automatic regularisation weight (per level)
 -------------------------------------------
 ``alpha = lam * trace(J^T J) / trace(L)`` at the level's starting point,
@@ -58,6 +73,13 @@ Charbonnier P, Blanc-Feraud L, Aubert G, Barlaud M. Deterministic
 edge-preserving regularization in computed imaging. IEEE Trans Image Process
 1997;6:298-311.
 
+Li L, Leigh JS. High-precision mapping of the magnetic field utilizing the
+harmonic function mean value property. J Magn Reson 2001;148:442-448
+(citation from memory).
+
+Fischer B, Modersitzki J. Curvature based image registration. J Math
+Imaging Vis 2003;18:81-85.
+
 Nocedal J, Wright SJ. Numerical Optimization, 2nd ed. Springer 2006
 (Gauss-Newton, inexact Newton-CG, Armijo backtracking).
 """
@@ -72,7 +94,7 @@ import numpy as np
 from . import _model as M
 
 __all__ = ["LevelProblem", "solve_level", "downsample", "upsample_to", "factor_penta", "solve_penta",
-           "charbonnier_weights"]
+           "charbonnier_weights", "harmonic_line_bands"]
 
 
 @dataclass
@@ -92,6 +114,9 @@ class LevelProblem:
     edge_weights : tuple of 3 ndarray, optional
         Per-edge factors ``c_a`` (shape of ``np.diff(u, axis=a)``, values in
         (0, 1]) multiplying the smoothness of each pair of neighbours; None = 1.
+    harmonic_weights : ndarray, shape (n, a, b), optional
+        Per-voxel weights ``W`` in [0, 1] of the harmonic penalty (1 inside
+        the brain); None = no harmonic penalty.
     """
 
     images: list
@@ -100,6 +125,7 @@ class LevelProblem:
     axis_weights: tuple = (1.0, 1.0, 1.0)
     upsample: int = 1
     edge_weights: tuple | None = None
+    harmonic_weights: np.ndarray | None = None
     info: dict = field(default_factory=dict)
 
     def __post_init__(self):
@@ -259,8 +285,45 @@ def _smooth_diag_cross(shape, w, c=None):
     return diag
 
 
+# ---------------------------------------------------------------- harmonic penalty
+def _harmonic_energy(u, w, hw):
+    """``1/2 sum W (L u)^2`` with ``L`` the weighted graph Laplacian of :func:`_laplacian`."""
+    lu = _laplacian(u, w)
+    return 0.5 * float(np.sum(hw * lu * lu))
+
+
+def _harmonic_apply(x, w, hw):
+    """``L W L x``: the gradient of :func:`_harmonic_energy` (and its Hessian applied to ``x``)."""
+    return _laplacian(hw * _laplacian(x, w), w)
+
+
+def harmonic_line_bands(shape, w, hw):
+    """Line-wise (PE) part of ``L W L``: pentadiagonal bands ``(h0, h1, h2)`` per line.
+
+    Row ``i`` of ``L`` has the degree ``deg_i`` on the diagonal, ``-w_0`` at
+    its PE neighbours and ``-w_a`` at its neighbours across lines.  Entries of
+    ``L W L`` between two voxels of one line come from the line's own rows
+    (the Gram matrix of ``sqrt(W) L_line``, pentadiagonal) and, on the
+    diagonal only, from the cross-line neighbours ``j`` (``w_a^2 W_j``).
+    """
+    n = shape[0]
+    deg = _smooth_diag_cross(shape, w)
+    if n > 1:
+        deg = deg + w[0] * _neighbour_count(n).reshape((n,) + (1,) * (len(shape) - 1))
+    sq = np.sqrt(np.asarray(hw, dtype=np.float64))
+    mid = sq * deg
+    lo = np.zeros(shape)
+    up = np.zeros(shape)
+    if n > 1:
+        lo[1:] = -w[0] * sq[1:]
+        up[:-1] = -w[0] * sq[:-1]
+    h0, h1, h2 = M.gram_bands(lo, mid, up)
+    h0 += _cross_neighbours(sq * sq, (0.0,) + tuple(wa * wa for wa in w[1:]))
+    return h0, h1, h2
+
+
 # ---------------------------------------------------------------- evaluation
-def _evaluate(prob: LevelProblem, u, alpha, beta, *, full: bool):
+def _evaluate(prob: LevelProblem, u, alpha, beta, *, full: bool, gamma: float = 0.0):
     """Objective (and, when ``full``, residual, Jacobian and barrier terms)."""
     w = prob.axis_weights
     du = M.derivative_pe(u)
@@ -288,6 +351,8 @@ def _evaluate(prob: LevelProblem, u, alpha, beta, *, full: bool):
         if full:
             bar_terms.append((c, d1, d2))
     energy = 0.5 * float(np.sum(r * r)) + alpha * _smooth_energy(u, w, prob.edge_weights) + beta * bar
+    if gamma:
+        energy += gamma * _harmonic_energy(u, w, prob.harmonic_weights)
     if not full:
         return energy, None
     return energy, dict(r=r, A=A, B=B, bar_terms=bar_terms, min_jac=min_jac)
@@ -315,22 +380,28 @@ def _line_hessian(prob, ev, alpha, beta, shape):
     return (lo, mid, up), bands, data_trace
 
 
-def _gradient(prob, ev, jb, u, alpha, beta):
+def _gradient(prob, ev, jb, u, alpha, beta, gamma=0.0):
     g = M.apply_bands_T(*jb, ev["r"])
     g += alpha * _laplacian(u, prob.axis_weights, prob.edge_weights)
+    if gamma:
+        g += gamma * _harmonic_apply(u, prob.axis_weights, prob.harmonic_weights)
     for c, d1, _d2 in ev["bar_terms"]:
         blo, bmid, bup = M.jacobian_bands(None, np.full_like(u, c))
         g += beta * M.apply_bands_T(blo, bmid, bup, d1)
     return g
 
 
-def _pcg(bands, alpha, w, rhs, *, maxiter, rtol, c=None):
-    """PCG for ``H x = rhs``; H = line bands - alpha * cross-line neighbour coupling."""
+def _pcg(bands, alpha, w, rhs, *, maxiter, rtol, c=None, gamma=0.0, hw=None, pre_bands=None):
+    """PCG for ``H x = rhs``; H = line bands - alpha * cross-line neighbour coupling
+    (+ ``gamma L W L`` when ``gamma``); preconditioned by ``pre_bands`` (default ``bands``)."""
     h0, h1, h2 = bands
-    fac = factor_penta(h0, h1, h2)
+    fac = factor_penta(*(bands if pre_bands is None else pre_bands))
 
     def hmul(x):
-        return M.band_matvec(h0, h1, h2, x) - alpha * _cross_neighbours(x, w, c)
+        y = M.band_matvec(h0, h1, h2, x) - alpha * _cross_neighbours(x, w, c)
+        if gamma:
+            y += gamma * _harmonic_apply(x, w, hw)
+        return y
 
     x = np.zeros_like(rhs)
     res = rhs.copy()
@@ -360,7 +431,7 @@ def _pcg(bands, alpha, w, rhs, *, maxiter, rtol, c=None):
 
 
 def solve_level(prob: LevelProblem, u0, *, lam, beta_rel, max_iter, tol=1e-4,
-                cg_maxiter=15, cg_rtol=2e-2):
+                cg_maxiter=15, cg_rtol=2e-2, harmonic=0.0):
     """Minimise ``E`` on one level by Gauss-Newton-PCG with Armijo backtracking.
 
     Parameters
@@ -376,19 +447,25 @@ def solve_level(prob: LevelProblem, u0, *, lam, beta_rel, max_iter, tol=1e-4,
         Gauss-Newton iterations at most.
     tol : float
         Stop when the relative decrease of ``E`` is below ``tol``.
+    harmonic : float
+        Dimensionless constant of the harmonic penalty (used when
+        ``prob.harmonic_weights`` is given): ``gamma = harmonic *
+        trace(J^T J) / trace(L W L)`` (see the module docstring).
 
     Returns
     -------
     u : ndarray
     info : dict
-        ``alpha``, ``beta``, ``iterations``, ``cg_iterations``, ``energy``
-        (first and last), ``hess_diag`` (Gauss-Newton Hessian diagonal at the
-        solution), ``residual`` (at the solution), ``min_jacobian``.
+        ``alpha``, ``beta``, ``gamma``, ``iterations``, ``cg_iterations``,
+        ``energy`` (first and last), ``hess_diag`` (Gauss-Newton Hessian
+        diagonal at the solution), ``residual`` (at the solution),
+        ``min_jacobian``.
     """
     t0 = time.perf_counter()
     u = np.array(u0, dtype=np.float64, copy=True)
     shape = u.shape
     w = prob.axis_weights
+    hw = prob.harmonic_weights
     # Automatic weight: alpha = lam * trace(J^T J) / trace(L) at the start.
     e0, ev = _evaluate(prob, u, 0.0, 0.0, full=True)
     if ev is None:
@@ -401,14 +478,28 @@ def solve_level(prob: LevelProblem, u0, *, lam, beta_rel, max_iter, tol=1e-4,
     if not np.isfinite(alpha) or alpha <= 0:
         alpha = lam
     beta = beta_rel * alpha
-    energy, ev = _evaluate(prob, u, alpha, beta, full=True)
+    gamma = 0.0
+    hb = None
+    if hw is not None and harmonic > 0:
+        hb = harmonic_line_bands(shape, w, hw)
+        h_trace = float(hb[0].sum())
+        if h_trace > 0 and np.isfinite(data_trace) and data_trace > 0:
+            gamma = harmonic * data_trace / h_trace
+        else:
+            hb = None
+
+    def pre(bands):
+        return None if hb is None else tuple(b + gamma * h for b, h in zip(bands, hb))
+
+    energy, ev = _evaluate(prob, u, alpha, beta, full=True, gamma=gamma)
     energies = [energy]
     cg_total = 0
     it = 0
     for it in range(1, max_iter + 1):
         jb, bands, _ = _line_hessian(prob, ev, alpha, beta, shape)
-        g = _gradient(prob, ev, jb, u, alpha, beta)
-        step, ncg = _pcg(bands, alpha, w, -g, maxiter=cg_maxiter, rtol=cg_rtol, c=prob.edge_weights)
+        g = _gradient(prob, ev, jb, u, alpha, beta, gamma)
+        step, ncg = _pcg(bands, alpha, w, -g, maxiter=cg_maxiter, rtol=cg_rtol, c=prob.edge_weights,
+                         gamma=gamma, hw=hw, pre_bands=pre(bands))
         cg_total += ncg
         slope = float(_dot(g, step))
         if slope >= 0:  # not a descent direction (should not happen): steepest descent
@@ -419,7 +510,7 @@ def solve_level(prob: LevelProblem, u0, *, lam, beta_rel, max_iter, tol=1e-4,
         for _ in range(12):
             cand = u + t * step
             # Evaluated in full: the accepted trial's Jacobian is reused next iteration.
-            e_new, ev_new = _evaluate(prob, cand, alpha, beta, full=True)
+            e_new, ev_new = _evaluate(prob, cand, alpha, beta, full=True, gamma=gamma)
             if np.isfinite(e_new) and e_new <= energy + 1e-4 * t * slope:
                 accepted = True
                 break
@@ -433,8 +524,8 @@ def solve_level(prob: LevelProblem, u0, *, lam, beta_rel, max_iter, tol=1e-4,
         if decrease <= tol * abs(energies[0]):
             break
     jb, bands, _ = _line_hessian(prob, ev, alpha, beta, shape)
-    hdiag = bands[0]
-    info = dict(alpha=alpha, beta=beta, iterations=it, cg_iterations=cg_total,
+    hdiag = bands[0] if hb is None else bands[0] + gamma * hb[0]
+    info = dict(alpha=alpha, beta=beta, gamma=gamma, iterations=it, cg_iterations=cg_total,
                 energy_start=energies[0], energy_end=energy, hess_diag=hdiag,
                 residual=ev["r"], min_jacobian=ev["min_jac"],
                 seconds=time.perf_counter() - t0)
