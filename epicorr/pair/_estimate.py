@@ -359,11 +359,11 @@ def estimate_field_from_pair(images, *, pe_directions, voxels_per_hz, affine, ma
                                 upsample=upsample, edge_weights=edge_w0 if lev == 0 else None,
                                 harmonic_weights=hw)
             n_it = iterations[0] if lev == 0 else iterations[1]
+            extra = {}
             if hw is not None:  # the harmonic penalty converges more slowly
                 n_it *= _HARMONIC_ITERATION_FACTOR
-            u, info = solve_level(prob, u, lam=regularization, beta_rel=barrier, max_iter=n_it,
-                                  harmonic=harmonic if hw is not None else 0.0,
-                                  cg_maxiter=_HARMONIC_CG if hw is not None else 15)
+                extra = dict(harmonic=harmonic, cg_maxiter=_HARMONIC_CG)
+            u, info = solve_level(prob, u, lam=regularization, beta_rel=barrier, max_iter=n_it, **extra)
             info["level"] = lev
             info["shape"] = tuple(int(s) for s in shape)
             level_info.append(info)
