@@ -310,7 +310,8 @@ def harmonic_line_bands(shape, w, hw):
     deg = _smooth_diag_cross(shape, w)
     if n > 1:
         deg = deg + w[0] * _neighbour_count(n).reshape((n,) + (1,) * (len(shape) - 1))
-    sq = np.sqrt(np.asarray(hw, dtype=np.float64))
+    hw = np.asarray(hw, dtype=np.float64)
+    sq = np.sqrt(hw)
     mid = sq * deg
     lo = np.zeros(shape)
     up = np.zeros(shape)
@@ -318,7 +319,7 @@ def harmonic_line_bands(shape, w, hw):
         lo[1:] = -w[0] * sq[1:]
         up[:-1] = -w[0] * sq[:-1]
     h0, h1, h2 = M.gram_bands(lo, mid, up)
-    h0 += _cross_neighbours(sq * sq, (0.0,) + tuple(wa * wa for wa in w[1:]))
+    h0 += _cross_neighbours(hw, (0.0,) + tuple(wa * wa for wa in w[1:]))
     return h0, h1, h2
 
 
