@@ -12,6 +12,7 @@ inside field is 0.  Errors are checked away from the boundary (r < 0.6 a, 1.5 a 
 
 import numpy as np
 import pytest
+from scipy import ndimage
 
 from epicorr.constants import GAMMA_BAR_HZ_PER_T
 from epicorr.errors import EpicorrInputError
@@ -110,6 +111,23 @@ def test_head_field_has_air_tissue_pattern():
     brain = field[head.brain_mask]
     assert np.abs(np.median(brain)) < 10
     assert 50 < np.percentile(np.abs(brain), 99.5) < 600
+
+
+def test_frontal_sinus_is_walled_off_from_the_brain():
+    # Anatomy (from memory, any anatomy text): the frontal sinus is a cavity between the
+    # outer and inner tables of the frontal bone, so bone, meninges and CSF always lie
+    # between its air and the brain.  On a 1 mm grid around the sinus no brain voxel may
+    # share a face with sinus air (distance 1 mm); the cavity itself must remain (adult
+    # frontal sinuses hold a few cm^3, from memory).
+    shape = (56, 40, 44)
+    aff = np.eye(4)
+    aff[:3, 3] = (-28.0, 52.0, -22.0)
+    for seed in range(4):
+        head = synthetic_head(shape=shape, affine=aff, seed=seed, supersample=1)
+        air = head.labels == head.LABELS.index("frontal sinus air")
+        assert air.sum() > 2000  # mm^3
+        gap_mm = ndimage.distance_transform_edt(~air)[head.brain_mask].min()
+        assert gap_mm > 1.0, (seed, gap_mm)
 
 
 def test_signal_side_field_of_a_sphere_is_its_inside_value():

@@ -9,7 +9,8 @@ of the grid's voxel centres.
 
 Tissue classes (``Head.LABELS``, index = label value): outside air,
 scalp/soft tissue, skull, CSF, grey matter, white matter, a frontal-sinus-like
-air cavity above the orbits, a sphenoid-like air cavity under the front of the
+air cavity above the orbits (inside the frontal bone: it never crosses the inner
+table, so bone, CSF and meninges wall it off from the brain), a sphenoid-like air cavity under the front of the
 brain, and ear-canal/mastoid-like air cavities beside the inferior temporal
 lobes.  Surfaces are ellipsoids whose radius is modulated by a few seeded
 low-frequency cosines, so every seed gives a slightly different, smooth head.
@@ -168,7 +169,9 @@ def _labels_at(d: dict, p: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     lab[white] = 5
     vent = d["vent_l"].inside(p) | d["vent_r"].inside(p)
     lab[vent & brain] = 3
-    lab[d["frontal"].inside(p)] = 6
+    # The frontal sinus is a cavity of the frontal bone: it stays outside the inner
+    # table, so bone, CSF and meninges separate its air from the brain.
+    lab[d["frontal"].inside(p) & ~inner] = 6
     lab[d["sphenoid"].inside(p)] = 7
     for ear in d["ears"]:
         lab[ear.inside(p) & head] = 8
