@@ -138,35 +138,45 @@ def _dot(a, b):
 
 
 # ---------------------------------------------------------------- pentadiagonal LDL^T
-def factor_penta(h0, h1, h2):
+def factor_penta(h0, h1, h2, *, overwrite=False):
     """Vectorised LDL^T of symmetric pentadiagonal matrices, one per PE line.
 
-    ``h0, h1, h2`` have shape ``(n, ...)`` (see :func:`._model.gram_bands`).
-    Returns ``(dinv, l1, l2)`` with ``l1[i] = L[i, i-1]`` and ``l2[i] = L[i, i-2]``.
-    The loop runs over the ``n`` positions of a line; every step is a numpy
-    operation over all lines together.
+    ``h0, h1, h2`` have shape ``(n, ...)`` (see :func:`._model.gram_bands`):
+    ``h0[i] = H[i, i]``, ``h1[i] = H[i, i+1]``, ``h2[i] = H[i, i+2]``.
+    Returns ``(dinv, l1, l2)`` stored the same way as the bands:
+    ``dinv[i] = 1 / D[i]``, ``l1[i] = L[i+1, i]`` and ``l2[i] = L[i+2, i]``.
+    With ``overwrite=True`` the factors are written into the three input
+    arrays (each band entry is read once, at its own step, before its slot is
+    reused), so the factorisation needs no extra full-size arrays; the inputs
+    are then destroyed.  The loop runs over the ``n`` positions of a line;
+    every step is a numpy operation over all lines together.
     """
+    if not overwrite:
+        h0, h1, h2 = h0.copy(), h1.copy(), h2.copy()
     n = h0.shape[0]
-    d = np.empty_like(h0)
-    l1 = np.zeros_like(h0)
-    l2 = np.zeros_like(h0)
+    d, l1, l2 = h0, h1, h2
     floor = 1e-12 * max(float(np.mean(np.abs(h0))), 1e-300)
     for i in range(n):
         di = h0[i].copy()
         if i >= 1:
-            di -= l1[i] ** 2 * d[i - 1]
+            di -= l1[i - 1] ** 2 * d[i - 1]
         if i >= 2:
-            di -= l2[i] ** 2 * d[i - 2]
+            di -= l2[i - 2] ** 2 * d[i - 2]
         np.maximum(di, floor, out=di)
         d[i] = di
         if i + 2 < n:
-            l2[i + 2] = h2[i] / di
+            l2[i] = h2[i] / di
+        else:
+            l2[i] = 0.0
         if i + 1 < n:
             t = h1[i].copy()
             if i >= 1:
-                t -= l2[i + 1] * d[i - 1] * l1[i]
-            l1[i + 1] = t / di
-    return 1.0 / d, l1, l2
+                t -= l2[i - 1] * d[i - 1] * l1[i - 1]
+            l1[i] = t / di
+        else:
+            l1[i] = 0.0
+    np.reciprocal(d, out=d)
+    return d, l1, l2
 
 
 def solve_penta(fac, rhs):
@@ -175,14 +185,14 @@ def solve_penta(fac, rhs):
     n = rhs.shape[0]
     z = np.array(rhs, dtype=np.float64, copy=True)
     for i in range(1, n):
-        z[i] -= l1[i] * z[i - 1]
+        z[i] -= l1[i - 1] * z[i - 1]
         if i >= 2:
-            z[i] -= l2[i] * z[i - 2]
+            z[i] -= l2[i - 2] * z[i - 2]
     z *= dinv
     for i in range(n - 2, -1, -1):
-        z[i] -= l1[i + 1] * z[i + 1]
+        z[i] -= l1[i] * z[i + 1]
         if i + 2 < n:
-            z[i] -= l2[i + 2] * z[i + 2]
+            z[i] -= l2[i] * z[i + 2]
     return z
 
 
@@ -396,7 +406,8 @@ def _pcg(bands, alpha, w, rhs, *, maxiter, rtol, c=None, gamma=0.0, hw=None, pre
     """PCG for ``H x = rhs``; H = line bands - alpha * cross-line neighbour coupling
     (+ ``gamma L W L`` when ``gamma``); preconditioned by ``pre_bands`` (default ``bands``)."""
     h0, h1, h2 = bands
-    fac = factor_penta(*(bands if pre_bands is None else pre_bands))
+    # The preconditioner's own bands (a fresh sum) are factorised in place.
+    fac = factor_penta(*bands) if pre_bands is None else factor_penta(*pre_bands, overwrite=True)
 
     def hmul(x):
         y = M.band_matvec(h0, h1, h2, x) - alpha * _cross_neighbours(x, w, c)
@@ -506,6 +517,9 @@ def solve_level(prob: LevelProblem, u0, *, lam, beta_rel, max_iter, tol=1e-4,
         if slope >= 0:  # not a descent direction (should not happen): steepest descent
             step = -g
             slope = -float(_dot(g, g))
+        # The Hessian bands and the gradient are rebuilt from the accepted trial;
+        # freeing them here lowers the peak memory of the line search.
+        del jb, bands, g
         t = 1.0
         accepted = False
         for _ in range(12):
