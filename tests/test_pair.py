@@ -83,6 +83,11 @@ def test_pentadiagonal_solver_matches_solve_banded():
         ab[4, :-2] = h2[:-2, j]
         np.testing.assert_allclose(x[:, j], linalg.solve_banded((2, 2), ab, b[:, j]), rtol=1e-10)
     np.testing.assert_allclose(_model.band_matvec(h0, h1, h2, x), b, atol=1e-10)
+    # In place: the same factors, written into the bands (which the default keeps intact).
+    bands = (h0.copy(), h1.copy(), h2.copy())
+    fac = _solver.factor_penta(*bands, overwrite=True)
+    assert all(f is band for f, band in zip(fac, bands))
+    np.testing.assert_array_equal(_solver.solve_penta(fac, b), x)
 
 
 def test_objective_gradient_and_jacobian_match_finite_differences():
