@@ -19,7 +19,7 @@ from scipy import sparse
 
 from epicorr.pair import estimate_field_from_pair
 from epicorr.pair._solver import (LevelProblem, _harmonic_apply, _harmonic_energy, _laplacian,
-                                  harmonic_line_bands, solve_level)
+                                  harmonic_line_bands, harmonic_source_weights, solve_level)
 
 SHAPE = (6, 5, 4)
 W_AX = (1.0, 0.5, 2.0)
@@ -139,6 +139,25 @@ def test_harmonic_option_lowers_error_on_a_physical_field():
         errs[h] = float(np.sqrt(np.mean((est.field_hz - f)[mask] ** 2)))
         assert est.info["harmonic_voxels"] == (int(mask.sum()) if h else 0)
     assert errs[300.0] < 0.7 * errs[0.0], errs
+
+
+def test_source_weights_known_answers_and_sphere():
+    # Interior of x^2 - y^2 (harmonic): L u = 0, weight exactly 1.  Interior of x^2 + y^2:
+    # second differences of x^2 are exactly 2, so |L u| = 4 and the weight is 1 / (1 + (4/s)^2).
+    g = np.meshgrid(*[np.arange(n, dtype=float) for n in (9, 8, 7)], indexing="ij")
+    inner = (slice(1, -1),) * 3
+    w = harmonic_source_weights(g[0] ** 2 - g[1] ** 2, axis_weights=(1.0, 1.0, 1.0), scale=0.3)
+    assert w.dtype == np.float32 and np.all(w[inner] == 1.0)
+    w = harmonic_source_weights(g[0] ** 2 + g[1] ** 2, axis_weights=(1.0, 1.0, 1.0), scale=2.0)
+    np.testing.assert_allclose(w[inner], 1.0 / (1.0 + 2.0 ** 2), rtol=1e-6)
+    # A magnetised sphere's field (point dipole outside, 0 inside, from memory): the step at its
+    # surface is a source, its far field is not.
+    shape = (40, 40, 40)
+    f = _sphere_field(shape, (20.0, 20.0, 20.0), 5.0, 3.0)
+    w = harmonic_source_weights(f, axis_weights=(1.0, 1.0, 1.0), scale=0.3)
+    r = np.sqrt(sum((gi - 20.0) ** 2 for gi in np.meshgrid(*[np.arange(40.0)] * 3, indexing="ij")))
+    assert w[(r > 4.0) & (r < 6.0)].min() < 0.5
+    assert w[(r > 10.0) & (r < 15.0)].min() > 0.9
 
 
 def test_harmonic_without_mask_uses_the_derived_brain():

@@ -46,7 +46,9 @@ registration (Fischer & Modersitzki 2003) restricted to the brain.  Its
 Hessian ``gamma L W L`` is applied exactly in the conjugate gradients; its
 line-wise part (:func:`harmonic_line_bands`, pentadiagonal) joins the
 preconditioner.  ``gamma = harmonic * trace(J^T J) / trace(L W L)``, so the
-constant is dimensionless like ``lam``.
+constant is dimensionless like ``lam``.  Right at the sources (within a voxel
+or two of air) the field is not harmonic on the grid, so ``W`` is lowered
+there by :func:`harmonic_source_weights` of the field before the refinement.
 
 Automatic regularisation weight (per level)
 -------------------------------------------
@@ -94,7 +96,7 @@ import numpy as np
 from . import _model as M
 
 __all__ = ["LevelProblem", "solve_level", "downsample", "upsample_to", "factor_penta", "solve_penta",
-           "charbonnier_weights", "harmonic_line_bands"]
+           "charbonnier_weights", "harmonic_line_bands", "harmonic_source_weights"]
 
 
 @dataclass
@@ -229,6 +231,37 @@ def charbonnier_weights(u, *, axis_weights, scale):
     """
     return tuple((1.0 / np.sqrt(1.0 + (np.sqrt(axis_weights[a]) * np.abs(np.diff(u, axis=a)) / scale) ** 2))
                  .astype(np.float32) for a in range(u.ndim))
+
+
+def harmonic_source_weights(u, *, axis_weights, scale):
+    """Weights of the harmonic penalty that spare the field's sources.
+
+    The field obeys Laplace's equation only away from its sources; within a
+    voxel or two of an air-tissue interface the discrete Laplacian of the true
+    field is large (partial-volume susceptibility, and derivatives of the
+    dipole field too steep for the grid).  Those voxels are outliers of the
+    harmonic model, so they get the Cauchy weight of robust regression
+    (Holland & Welsch 1977, from memory) of the Laplacian of a first field
+    ``u``: ``1 / (1 + (|L u| / scale)^2)``.
+
+    Parameters
+    ----------
+    u : ndarray, shape (n, a, b)
+        First field (before the harmonic refinement), reference voxels of
+        displacement, PE axis first.
+    axis_weights : tuple of 3 float
+        ``w_a = (h_pe / h_a)^2``; ``L u`` (:func:`_laplacian`) is then in voxels
+        of displacement per squared PE voxel length.
+    scale : float
+        Laplacian at which the weight is 1/2, same unit, > 0.
+
+    Returns
+    -------
+    ndarray, shape of ``u``, float32
+        Values in (0, 1]; 1 where ``u`` is harmonic.
+    """
+    lu = _laplacian(np.asarray(u, dtype=np.float64), axis_weights)
+    return (1.0 / (1.0 + (lu / scale) ** 2)).astype(np.float32)
 
 
 def _laplacian(u, w, c=None):
