@@ -64,7 +64,7 @@ def register(subparsers) -> None:
     p.add_argument("--harmonic", type=float, metavar="WEIGHT",
                    help="harmonic refinement: the field inside the brain is pulled towards a solution "
                         "of Laplace's equation, as a field from outside sources is (e.g. 300; default "
-                        "off; about twice the time)")
+                        "off; about three times the time)")
     p.set_defaults(func=_pair_field)
 
     p = subparsers.add_parser(
