@@ -73,7 +73,10 @@ def test_pentadiagonal_solver_matches_solve_banded():
     h1[-1] = 0
     h2[-2:] = 0
     b = rng.normal(size=(n, m))
+    given = [h.copy() for h in (h0, h1, h2)]
     x = _solver.solve_penta(_solver.factor_penta(h0, h1, h2), b)
+    for h, h_given in zip((h0, h1, h2), given):  # the default keeps the bands intact
+        np.testing.assert_array_equal(h, h_given)
     for j in range(m):
         ab = np.zeros((5, n))
         ab[0, 2:] = h2[:-2, j]
@@ -83,7 +86,7 @@ def test_pentadiagonal_solver_matches_solve_banded():
         ab[4, :-2] = h2[:-2, j]
         np.testing.assert_allclose(x[:, j], linalg.solve_banded((2, 2), ab, b[:, j]), rtol=1e-10)
     np.testing.assert_allclose(_model.band_matvec(h0, h1, h2, x), b, atol=1e-10)
-    # In place: the same factors, written into the bands (which the default keeps intact).
+    # In place: the same factors, written into the given bands.
     bands = (h0.copy(), h1.copy(), h2.copy())
     fac = _solver.factor_penta(*bands, overwrite=True)
     assert all(f is band for f, band in zip(fac, bands))

@@ -437,9 +437,9 @@ def _gradient(prob, ev, jb, u, alpha, beta, gamma=0.0):
 
 def _pcg(bands, alpha, w, rhs, *, maxiter, rtol, c=None, gamma=0.0, hw=None, pre_bands=None):
     """PCG for ``H x = rhs``; H = line bands - alpha * cross-line neighbour coupling
-    (+ ``gamma L W L`` when ``gamma``); preconditioned by ``pre_bands`` (default ``bands``)."""
+    (+ ``gamma L W L`` when ``gamma``); preconditioned by ``pre_bands`` (default ``bands``).
+    ``pre_bands`` must be arrays of their own: they are factorised in place (destroyed)."""
     h0, h1, h2 = bands
-    # The preconditioner's own bands (a fresh sum) are factorised in place.
     fac = factor_penta(*bands) if pre_bands is None else factor_penta(*pre_bands, overwrite=True)
 
     def hmul(x):

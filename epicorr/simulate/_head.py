@@ -10,10 +10,11 @@ of the grid's voxel centres.
 Tissue classes (``Head.LABELS``, index = label value): outside air,
 scalp/soft tissue, skull, CSF, grey matter, white matter, a frontal-sinus-like
 air cavity above the orbits (inside the frontal bone: it never crosses the inner
-table, so bone, CSF and meninges wall it off from the brain), a sphenoid-like air cavity under the front of the
-brain, and ear-canal/mastoid-like air cavities beside the inferior temporal
-lobes.  Surfaces are ellipsoids whose radius is modulated by a few seeded
-low-frequency cosines, so every seed gives a slightly different, smooth head.
+table, so bone, CSF and meninges wall it off from the brain), a sphenoid-like
+air cavity under the front of the brain, and ear-canal/mastoid-like air
+cavities beside the inferior temporal lobes.  Surfaces are ellipsoids whose
+radius is modulated by a few seeded low-frequency cosines, so every seed gives
+a slightly different, smooth head.
 Voxel properties (susceptibility, contrasts) are partial-volume averages over
 ``supersample**3`` points per voxel.
 
